@@ -1,0 +1,56 @@
+"""The ``ringid`` command line.
+
+Subcommands are listed in pipeline order. Each lives in ``ringid.commands.<name>``
+and exposes ``add_parser(subparsers)`` and ``run(args)``; heavy imports happen
+inside ``run`` so that ``ringid --help`` and cheap jobs start fast.
+
+Exit status: 0 done (failures recorded in the outputs included), 1 bad input,
+2 usage error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from . import __version__
+from .errors import RingidError
+
+# (module under ringid.commands, one-line help) in pipeline order
+COMMANDS = [
+    ("library", "build and inspect the phase library from CIF files"),
+]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="ringid",
+        description="Phase identification for electron diffraction ring patterns (screening results).",
+    )
+    parser.add_argument("--version", action="version", version=f"ringid {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for name, help_text in COMMANDS:
+        module = importlib.import_module(f"ringid.commands.{name}")
+        module.add_parser(sub, name, help_text)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except RingidError as exc:
+        if args.debug:
+            raise
+        print(f"ringid: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("ringid: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
