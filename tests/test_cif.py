@@ -1,0 +1,142 @@
+"""Reading CIFs: space-group sources, settings, displacement parameters, bad input."""
+
+import math
+
+import numpy as np
+import pytest
+
+from cifgen import cif_text, write_cif
+from ringid.cif import DEFAULT_U_ISO_ANGSTROM2, read_crystal
+from ringid.errors import RingidError
+
+FCC_OPS = """loop_
+_space_group_symop_operation_xyz
+'x,y,z'
+'x,y+1/2,z+1/2'
+'x+1/2,y,z+1/2'
+'x+1/2,y+1/2,z'
+"""
+
+
+def test_hm_symbol_fcc(tmp_path):
+    c = read_crystal(write_cif(tmp_path, "Au", cif_text()))
+    # source: International Tables A, Fm-3m 4a has 4 atoms per cell; Au formula Z = 4
+    assert len(c.fract) == 4
+    assert c.space_group_number == 225
+    assert c.formula_units_z == 4
+    # source: handbook density of gold 19.30 g/cm³ (CRC Handbook, from memory)
+    assert c.density_g_cm3 == pytest.approx(19.30, rel=0.005)
+
+
+def test_symop_loop_defines_the_group(tmp_path):
+    # Only the four centring translations: the operators define F 1 (not Fm-3m); an
+    # inconsistent H-M symbol is overruled by the operators with a warning.
+    text = cif_text(symmetry="_space_group_name_H-M_alt 'P m -3 m'\n" + FCC_OPS)
+    c = read_crystal(write_cif(tmp_path, "Au", text))
+    assert len(c.fract) == 4
+    assert len(c.centring_vectors) == 4
+    assert any("disagrees" in w for w in c.warnings)
+
+
+def test_old_symmetry_tags_and_hall(tmp_path):
+    text = cif_text(symmetry="_symmetry_space_group_name_Hall '-F 4 2 3'\n")
+    c = read_crystal(write_cif(tmp_path, "Au", text))
+    assert c.space_group_number == 225 and len(c.fract) == 4
+    text = cif_text(symmetry="_symmetry_space_group_name_H-M 'F m -3 m'\n")
+    assert len(read_crystal(write_cif(tmp_path, "Au2", text)).fract) == 4
+    text = cif_text(symmetry="loop_\n_symmetry_equiv_pos_as_xyz\nx,y,z\n-x,-y,-z\n")
+    c = read_crystal(write_cif(tmp_path, "Au3", text))
+    assert c.space_group_number == 2 and len(c.fract) == 1
+
+
+def test_number_only_uses_reference_setting_with_warning(tmp_path):
+    c = read_crystal(write_cif(tmp_path, "Au", cif_text(symmetry="_space_group_IT_number 225\n")))
+    assert len(c.fract) == 4
+    assert any("number" in w for w in c.warnings)
+
+
+def test_origin_choice_of_diamond_is_found(tmp_path):
+    # Si at 8a: (1/8,1/8,1/8) in origin choice 2 and (0,0,0) in choice 1 (ITA, Fd-3m).
+    si = dict(formula="Si", cell=(5.431, 5.431, 5.431, 90, 90, 90), extra="_cell_formula_units_Z 8\n")
+    c2 = read_crystal(write_cif(tmp_path, "a", cif_text(symmetry="_space_group_name_H-M_alt 'F d -3 m'\n",
+                                                         atoms=(("Si1", "Si", 0.125, 0.125, 0.125, 1, 0.005),), **si)))
+    c1 = read_crystal(write_cif(tmp_path, "b", cif_text(symmetry="_space_group_name_H-M_alt 'F d -3 m'\n",
+                                                         atoms=(("Si1", "Si", 0, 0, 0, 1, 0.005),), **si)))
+    assert len(c1.fract) == len(c2.fract) == 8
+    assert c2.space_group_symbol.endswith(":2") and c1.space_group_symbol.endswith(":1")
+    # the two descriptions are the same structure: the same nearest-neighbour distance
+    # source: Si nearest-neighbour distance a·√3/4 = 2.3517 Å (diamond structure geometry)
+    for c in (c1, c2):
+        orth = np.array([[5.431, 0, 0], [0, 5.431, 0], [0, 0, 5.431]])
+        diff = c.fract[1:] - c.fract[0]
+        diff -= np.round(diff)
+        assert np.min(np.linalg.norm(diff @ orth, axis=1)) == pytest.approx(5.431 * math.sqrt(3) / 4, rel=1e-6)
+
+
+def test_displacement_parameters(tmp_path):
+    b_text = cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1),)).replace("_atom_site_U_iso_or_equiv", "_atom_site_B_iso_or_equiv")
+    b_text = b_text.replace("Au1 Au 0 0 0 1\n", "Au1 Au 0 0 0 1 0.6\n")
+    c = read_crystal(write_cif(tmp_path, "B", b_text))
+    assert c.u_iso_angstrom2[0] == pytest.approx(0.6 / (8 * math.pi**2), rel=1e-6)
+    no_u = cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, "?"),))
+    c = read_crystal(write_cif(tmp_path, "none", no_u))
+    assert c.u_iso_angstrom2[0] == DEFAULT_U_ISO_ANGSTROM2
+    assert any("default U" in w for w in c.warnings)
+    aniso = cif_text() + "loop_\n_atom_site_aniso_label\n_atom_site_aniso_U_11\n_atom_site_aniso_U_22\n_atom_site_aniso_U_33\n"
+    aniso += "_atom_site_aniso_U_12\n_atom_site_aniso_U_13\n_atom_site_aniso_U_23\nAu1 0.01 0.012 0.014 0.001 0 0\n"
+    c = read_crystal(write_cif(tmp_path, "aniso", aniso))
+    # U_eq = trace/3 for a cubic cell (Fischer & Tillmanns 1988, Acta Cryst. C44, 775)
+    assert c.u_iso_angstrom2[0] == pytest.approx(0.012, rel=1e-5)
+
+
+def test_partial_and_mixed_occupancy_and_ions(tmp_path):
+    # a Cu3Au-like disordered fcc alloy: one site shared 0.75 Cu / 0.25 Au
+    text = cif_text(formula="Cu0.75 Au0.25", cell=(3.75, 3.75, 3.75, 90, 90, 90),
+                    atoms=(("Cu1", "Cu2+", 0, 0, 0, 0.75, 0.008), ("Au1", "Au", 0, 0, 0, 0.25, 0.008)))
+    c = read_crystal(write_cif(tmp_path, "alloy", text))
+    assert len(c.fract) == 8 and sorted(set(c.elements)) == ["Au", "Cu"]
+    assert np.sum(c.occupancy) == pytest.approx(4.0)
+    assert any("neutral" in w for w in c.warnings)
+
+
+def test_cif2_text(tmp_path):
+    text = "#\\#CIF_2.0\n" + cif_text(extra="_publ_section_title\n'''Gold, film standard (Å)'''\n")
+    c = read_crystal(write_cif(tmp_path, "cif2", text))
+    assert len(c.fract) == 4 and "Gold" in c.title
+
+
+BAD = {
+    "empty": ("", "empty file"),
+    "binary": (b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", "binary"),
+    "not_cif": ("this is not a crystal structure\njust words\n", "not a valid CIF"),
+    "no_cell": (cif_text().replace("_cell_length_a 4.0782\n", ""), "no unit cell"),
+    "no_atoms": (cif_text().split("loop_")[0], "no atom sites"),
+    "unknown_element": (cif_text(atoms=(("Qq1", "Qq", 0, 0, 0, 1, 0.01),)), "unknown element"),
+    "occupancy": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1.5, 0.01),)), "occupancy 1.5 > 1"),
+    "negative_u": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, -0.01),)), "negative displacement"),
+    "duplicate_sites": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au2", "Au", 0, 0, 0, 1, 0.01))), "duplicated atom sites"),
+    "duplicate_labels": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au1", "Au", 0.5, 0.5, 0.5, 1, 0.01))), "duplicated atom site label"),
+    "angles": (cif_text(cell=(4, 4, 4, 120, 120, 120)), "impossible cell angles"),
+    "angle_range": (cif_text(cell=(4, 4, 4, 90, 190, 90)), "impossible cell angles"),
+    "space_group": (cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"), "space group cannot be resolved"),
+    "no_space_group": (cif_text(symmetry=""), "space group cannot be resolved"),
+}
+
+
+@pytest.mark.parametrize("name", sorted(BAD))
+def test_bad_cif_gives_one_line_error_naming_the_file(tmp_path, name):
+    content, expected = BAD[name]
+    path = tmp_path / f"{name}.cif"
+    path.write_bytes(content if isinstance(content, bytes) else content.encode())
+    with pytest.raises(RingidError) as err:
+        read_crystal(path)
+    message = str(err.value)
+    assert message.startswith(str(path) + ": ")
+    assert expected in message
+    assert "\n" not in message
+
+
+def test_untrusted_title_is_kept_as_text(tmp_path):
+    text = cif_text(extra="_chemical_name_common '<script>alert(\"x\")</script>'\n")
+    c = read_crystal(write_cif(tmp_path, "evil", text))
+    assert c.title == '<script>alert("x")</script>'  # escaping is the report's job
