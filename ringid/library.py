@@ -195,7 +195,7 @@ def hkl_label(hkl, hexagonal: bool) -> str:
 
 def _representative(hkl: np.ndarray, f2: np.ndarray) -> np.ndarray:
     """The index that names a ring: strongest family, most non-negative indices, then largest."""
-    strength = np.round(f2 / max(f2.max(), 1e-300), 6)
+    strength = np.round(f2 / max(f2.max(), 1e-300), 3)  # robust to rounded coordinates (0.3333)
     nonneg = (hkl >= 0).sum(axis=1)
     order = np.lexsort((hkl[:, 2], hkl[:, 1], hkl[:, 0], nonneg, strength))
     return hkl[order[-1]]

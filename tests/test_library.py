@@ -1,0 +1,277 @@
+"""Phase library: ring positions, structure factors, absences, files and CLI."""
+
+import csv
+import dataclasses
+import json
+import re
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from cifgen import cif_text, write_cif
+from conftest import REFERENCE_PHASES
+from ringid.cif import read_crystal
+from ringid.library import (
+    INDEX_COLUMNS,
+    RING_COLUMNS,
+    build_library,
+    build_phase,
+    read_phase_rings,
+    ring_list,
+)
+
+# ----------------------------------------------------------------- pyFAI calibrant tables
+
+# pyFAI calibrant name -> our phase id. The calibrant files cite their sources in their
+# headers (NIST SRM 640c/660c/674b, Maeland & Flanagan 1964, Witt 1967, Wyckoff 1963, ...).
+CALIBRANTS = {
+    "Au": "Au", "Al": "Al", "Si": "Si", "Ni": "Ni", "Pt": "Pt", "NaCl": "NaCl", "CeO2": "CeO2",
+    "ZnO": "ZnO", "TiO2": "TiO2_rutile", "alpha_Al2O3": "Al2O3_corundum", "LaB6": "LaB6",
+    "diamond": "C_diamond",
+}
+
+
+def pyfai_calibrant(name):
+    """(cell, d-spacings) of a pyFAI calibrant, read from its .D resource file."""
+    from pyFAI import resources
+
+    text = open(resources.resource_filename(f"calibration/{name}.D"), encoding="utf-8").read()
+    cell_line = next(line for line in text.splitlines() if line.startswith("# Cell"))
+    numbers = re.findall(r"(?<![\w.])(\d+\.\d+|\d+)(?=\s|Å|°|\)|$)", cell_line.split(":", 1)[1])
+    values = [float(x) for x in numbers]
+    a = values[0]
+    if len(values) >= 6:
+        cell = tuple(values[:6])
+    else:  # cubic cells given by a alone
+        cell = (a, a, a, 90.0, 90.0, 90.0)
+    d = np.array([float(line.split()[0]) for line in text.splitlines() if line.strip() and not line.startswith("#")])
+    return cell, d
+
+
+@pytest.mark.parametrize("calibrant", sorted(CALIBRANTS))
+def test_d_spacings_equal_pyfai_calibrant_tables(calibrant):
+    cell, d_cal = pyfai_calibrant(calibrant)
+    crystal = read_crystal(REFERENCE_PHASES / f"{CALIBRANTS[calibrant]}.cif")
+    # compare at the calibrant's own cell: only the ring enumeration and merging are tested
+    crystal = dataclasses.replace(crystal, cell=cell)
+    rings, _, _ = ring_list(crystal, d_min_angstrom=0.5)
+    d_cal = d_cal[d_cal >= 0.5]
+    for d in d_cal:  # every tabulated line is one of our rings (allowed or double diffraction)
+        assert np.min(np.abs(rings.d_angstrom - d) / d) < 1e-4, f"{calibrant}: no ring at d = {d} Å"
+    # and our five strongest rings inside the table's range are tabulated lines
+    inside = (rings.d_angstrom >= d_cal.min() * (1 - 1e-4)) & (rings.intensity > 0)
+    strongest = np.argsort(-np.where(inside, rings.intensity, -1))[: min(5, inside.sum())]
+    for d in rings.d_angstrom[strongest]:
+        assert np.min(np.abs(d_cal - d) / d) < 1e-4, f"{calibrant}: strong ring d = {d:.4f} Å not in the table"
+
+
+# ----------------------------------------------------------------- gemmi's calculator
+
+GEMMI_PHASES = ["Fe3O4", "TiO2_anatase", "Al2O3_corundum", "ZnO", "CeO2", "ZrO2_monoclinic", "C_graphite", "Si"]
+
+
+@pytest.mark.parametrize("phase", GEMMI_PHASES)
+def test_ring_f_squared_equals_gemmi_structure_factor_calculator(phase):
+    """Relative Σ|F|² of every ring equals gemmi's StructureFactorCalculatorE (independent
+    symmetry expansion: gemmi sums over its own operators per asymmetric-unit site)."""
+    import gemmi
+
+    path = REFERENCE_PHASES / f"{phase}.cif"
+    crystal = read_crystal(path)
+    rings, refl, ring_of = ring_list(crystal, d_min_angstrom=0.7)
+    st = gemmi.read_small_structure(str(path))
+    assert len(st.get_all_unit_cell_sites()) == len(crystal.fract)  # same expansion
+    st.change_occupancies_to_crystallographic()
+    u_by_label = dict(zip(crystal.labels, crystal.u_iso_angstrom2))
+    for site in st.sites:  # same U (our default where the CIF gives none); isotropic
+        site.u_iso = float(u_by_label[site.label])
+        site.aniso = gemmi.SMat33d(0, 0, 0, 0, 0, 0) if hasattr(site.aniso, "u11") else site.aniso
+    calc = gemmi.StructureFactorCalculatorE(st.cell)
+    weighted = np.zeros(len(rings.d_angstrom))
+    for hkl, d, r in zip(refl.hkl, refl.d_angstrom, ring_of):
+        if r >= 0:
+            weighted[r] += abs(calc.calculate_sf_from_small_structure(st, [int(x) for x in hkl])) ** 2 * d * d
+    ours = rings.intensity / 100.0
+    weighted /= weighted.max()
+    allowed = ~rings.double_diffraction
+    np.testing.assert_allclose(ours[allowed], weighted[allowed], rtol=1e-6, atol=1e-9)
+    assert np.all(weighted[~allowed] < 1e-9)
+
+
+# ----------------------------------------------------------------- absences (ITA Vol. A)
+
+
+def _rings(phase, d_min=0.5):
+    rings, refl, ring_of = ring_list(read_crystal(REFERENCE_PHASES / f"{phase}.cif"), d_min_angstrom=d_min)
+    return rings, refl, ring_of
+
+
+def _allowed_hkl(refl, ring_of, rings):
+    kinematic = ring_of >= 0
+    kinematic &= refl.f_squared > 1e-10 * refl.f_squared.max()
+    return refl.hkl[kinematic]
+
+
+def test_fcc_unmixed_indices():
+    # source: International Tables A, F-centring: h,k,l all even or all odd
+    rings, refl, ring_of = _rings("Au")
+    hkl = refl.hkl[ring_of >= 0]
+    parity = np.mod(hkl, 2)
+    assert np.all((parity == parity[:, :1]).all(axis=1))
+    assert not rings.double_diffraction.any()  # centring absences never light up
+    assert list(rings.hkl[:5]) == ["1 1 1", "2 0 0", "2 2 0", "3 1 1", "2 2 2"]
+    assert list(rings.multiplicity[:5]) == [8, 6, 12, 24, 8]
+
+
+def test_bcc_h_plus_k_plus_l_even():
+    # source: International Tables A, I-centring: h+k+l = 2n
+    rings, refl, ring_of = _rings("Fe")
+    assert np.all(refl.hkl[ring_of >= 0].sum(axis=1) % 2 == 0)
+    assert rings.hkl[0] == "1 1 0" and rings.multiplicity[0] == 12
+
+
+def test_diamond_absences_and_double_diffraction():
+    # source: International Tables A, Fd-3m (origin 2): F-centring, and for hkl all even
+    # h+k+l = 4n (0kl: k+l = 4n from the d-glide; 222 extinguished by the 8a site)
+    rings, refl, ring_of = _rings("Si")
+    hkl = _allowed_hkl(refl, ring_of, rings)
+    even = (np.mod(hkl, 2) == 0).all(axis=1)
+    assert np.all(hkl[even].sum(axis=1) % 4 == 0)
+    labels = dict(zip(rings.hkl, rings.double_diffraction))
+    # 200 = 111 + 1-1-1 and 222 = 111 + 111 light up by double diffraction (METHODS.md §4)
+    assert labels["2 0 0"] and labels["2 2 2"]
+    assert not labels["1 1 1"] and not labels["2 2 0"]
+    i = rings.hkl.index("2 2 2")
+    assert rings.intensity[i] == 0
+
+
+def test_hcp_0001_forbidden_0002_allowed():
+    # source: International Tables A, P6_3/mmc with atoms at 2c: 000l only l = 2n;
+    # 0001 = (0 1 -1 1) + (0 -1 1 0) by double diffraction (METHODS.md §4)
+    rings, _, _ = _rings("Ti")
+    by_label = dict(zip(rings.hkl, zip(rings.intensity, rings.double_diffraction)))
+    assert by_label["0 0 0 1"] == (0.0, True)
+    assert by_label["0 0 0 2"][0] > 1 and not by_label["0 0 0 2"][1]
+    # source: hcp Ti strongest X-ray/electron ring is 10-11 (common knowledge, from memory)
+    assert rings.hkl[int(np.argmax(rings.intensity))] == "1 0 -1 1"
+
+
+def test_rutile_h0l_with_h_plus_l_odd_absent():
+    # source: International Tables A, P4_2/mnm: h0l (0kl) reflections only with h+l = 2n
+    _, refl, ring_of = _rings("TiO2_rutile")
+    hkl = _allowed_hkl(refl, ring_of, None)
+    h0l = hkl[hkl[:, 1] == 0]
+    assert len(h0l) and np.all((h0l[:, 0] + h0l[:, 2]) % 2 == 0)
+
+
+def test_au_intensities_match_vainshtein_areas():
+    # source: METHODS.md §3 (computed): Au, B = 0.6 Å², c4322, azimuthal-mean areas
+    # 111/200/220/311/222 = 100/45.5/23.5/23.4/6.4
+    crystal = read_crystal(REFERENCE_PHASES / "Au.cif")
+    crystal = dataclasses.replace(crystal, u_iso_angstrom2=np.full(len(crystal.fract), 0.6 / (8 * np.pi**2)))
+    rings, _, _ = ring_list(crystal)
+    np.testing.assert_allclose(rings.intensity[:5], [100, 45.5, 23.5, 23.4, 6.4], atol=0.06)
+
+
+def test_merge_tolerance_joins_equal_d():
+    # cubic 333 and 511 share d = a/√27: one ring of multiplicity 8 + 24 = 32
+    rings, _, _ = _rings("Au")
+    i = int(np.argmin(np.abs(rings.d_angstrom - 4.0782 / np.sqrt(27))))
+    assert rings.multiplicity[i] == 32
+
+
+# ----------------------------------------------------------------- files and CLI
+
+
+def test_reference_library_files(reference_library):
+    with open(reference_library / "index.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert list(rows[0].keys()) == INDEX_COLUMNS
+    phases = {r["phase"] for r in rows}
+    required = {"Au", "Al", "Ag", "Cu", "Ni", "Pt", "Pd", "Fe", "W", "Si", "C_diamond", "C_graphite", "TlCl", "NaCl",
+                "MgO", "NiO", "CeO2", "ZnO", "TiO2_rutile", "TiO2_anatase", "SnO2", "Al2O3_corundum", "Fe3O4", "Cu2O",
+                "LaB6", "Ti", "ZrO2_monoclinic"}
+    assert required <= phases
+    assert all(r["status"] == "ok" for r in rows), [r for r in rows if r["status"] != "ok"]
+    with open(reference_library / "rings" / "Fe3O4.csv", newline="") as fh:
+        reader = csv.DictReader(fh)
+        assert reader.fieldnames[:6] == ["d_angstrom", "g_per_nm", "intensity", "multiplicity", "hkl", "double_diffraction"]
+        assert set(RING_COLUMNS) == set(reader.fieldnames)
+        ring_rows = list(reader)
+    assert max(float(r["intensity"]) for r in ring_rows) == 100
+    record = json.loads((reference_library / "phases" / "Fe3O4.json").read_text())
+    for key in ("formula", "formula_units_z", "space_group_number", "space_group_symbol", "cell", "volume_angstrom3",
+                "density_g_cm3", "cif_path", "cif_sha256", "warnings"):
+        assert key in record
+    assert record["space_group_number"] == 227
+    # source: magnetite X-ray density 5.20 g/cm³ (handbook value, from memory), Z = 8
+    assert record["density_g_cm3"] == pytest.approx(5.20, rel=0.01)
+    assert record["formula_units_z"] == 8
+    rings = read_phase_rings(reference_library, "Fe3O4")
+    # source: magnetite strongest X-ray line 311 at 2.53 Å (ICDD-style tables, from memory);
+    # in electron diffraction 311 is also the strongest ring
+    assert rings.hkl[int(np.argmax(rings.intensity))] == "3 1 1"
+
+
+def test_failed_cif_is_a_result_not_a_crash(tmp_path):
+    cifs = tmp_path / "cifs"
+    cifs.mkdir()
+    write_cif(cifs, "Au", cif_text())
+    write_cif(cifs, "broken", cif_text(atoms=(("Au1", "Au", 0, 0, 0, 2, 0.01),)))
+    out = tmp_path / "lib"
+    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "build", str(cifs), "-o", str(out)],
+                         capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    assert "broken.cif: occupancy 2 > 1 at site Au1" in res.stderr
+    with open(out / "index.csv", newline="") as fh:
+        rows = {r["phase"]: r for r in csv.DictReader(fh)}
+    assert rows["Au"]["status"] == "ok" and rows["broken"]["status"] == "failed"
+    assert "occupancy" in rows["broken"]["error"]
+    assert json.loads((out / "phases" / "broken.json").read_text())["status"] == "failed"
+    assert (out / "rings" / "broken.csv").read_text().startswith("d_angstrom,")
+
+
+def test_nothing_built_exits_1_with_one_line(tmp_path):
+    cifs = tmp_path / "cifs"
+    cifs.mkdir()
+    (cifs / "empty.cif").write_text("")
+    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "build", str(cifs), "-o", str(tmp_path / "lib")],
+                         capture_output=True, text=True)
+    assert res.returncode == 1
+    assert res.stderr.strip().splitlines()[-1] == f"ringid: error: {cifs}: no phase could be built"
+    assert "Traceback" not in res.stderr
+
+
+def test_per_cif_command_index_and_show(tmp_path):
+    out = tmp_path / "lib"
+    for phase in ("Au", "ZnO"):
+        res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "phase", str(REFERENCE_PHASES / f"{phase}.cif"),
+                              "-o", str(out)], capture_output=True, text=True)
+        assert res.returncode == 0, res.stderr
+    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "index", str(out)], capture_output=True, text=True)
+    assert res.returncode == 0 and (out / "index.csv").exists()
+    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "show", "ZnO", "--library", str(out)],
+                         capture_output=True, text=True)
+    assert res.returncode == 0
+    assert "1 0 -1 1" in res.stdout and "P 63 m c" in res.stdout
+    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "show", "Xx", "--library", str(out)],
+                         capture_output=True, text=True)
+    assert res.returncode == 1 and "phase 'Xx' is not in the library" in res.stderr
+
+
+def test_build_is_deterministic(tmp_path):
+    a = build_phase(REFERENCE_PHASES / "TiO2_anatase.cif", tmp_path / "a")
+    b = build_phase(REFERENCE_PHASES / "TiO2_anatase.cif", tmp_path / "b")
+    assert a == b
+    for sub in ("rings", "phases", "reflections"):
+        ext = "json" if sub == "phases" else "csv"
+        assert (tmp_path / "a" / sub / f"TiO2_anatase.{ext}").read_bytes() == (tmp_path / "b" / sub / f"TiO2_anatase.{ext}").read_bytes()
+
+
+def test_build_library_refuses_missing_folder(tmp_path):
+    from ringid.errors import RingidError
+
+    with pytest.raises(RingidError, match="not a folder"):
+        build_library(tmp_path / "nope", tmp_path / "lib")
