@@ -65,8 +65,8 @@ def test_beam_stop_shadow_is_masked(angle, dose):
     shadow = sim.beam_stop
     # all but the last few tiles where a rod leaves through an image corner
     assert res.mask[shadow].mean() > 0.995
-    # the margin stays near the shadow: less than 1 % of the unshadowed image extra
-    assert (res.mask & ~shadow).mean() < 0.01 + 0.002
+    # the safety margin around the shadow is smaller than the shadow itself
+    assert (res.beam_stop & ~shadow).sum() < shadow.sum()
     assert res.n_beam_stop > 0
 
 
