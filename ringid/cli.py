@@ -20,6 +20,7 @@ from .errors import RingidError
 # (module under ringid.commands, one-line help) in pipeline order
 COMMANDS = [
     ("library", "build and inspect the phase library from CIF files"),
+    ("identify", "score a sample's rings against the phase library"),
 ]
 
 
@@ -50,6 +51,9 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("ringid: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into e.g. `head`
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1,0 +1,48 @@
+"""``ringid identify``: score a sample's rings against the phase library.
+
+    ringid identify RINGS --library LIB -o DIR [--calibration-kind standard|constant|nominal]
+
+Writes DIR/phases.csv (ranked candidates), DIR/rings.csv (the rings with phase and hkl) and
+DIR/identification.json (answer, confidence, alternatives, refined lattice, flags).
+"""
+
+from __future__ import annotations
+
+
+def add_parser(subparsers, name: str, help_text: str) -> None:
+    p = subparsers.add_parser(name, help=help_text, description=help_text)
+    p.add_argument("rings", metavar="RINGS", help="rings table (CSV with g_per_nm, g_sigma_per_nm, fwhm_per_nm, area[, kind])")
+    p.add_argument("--library", required=True, metavar="LIB", help="phase library folder (ringid library build)")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="folder for phases.csv, rings.csv, identification.json")
+    p.add_argument("--calibration-kind", choices=["standard", "constant", "nominal"], default="standard",
+                   help="how the camera constant was obtained; sets the dilation window "
+                        "(standard/constant: ±0.5 %%, nominal: ±3 %%)")
+    p.add_argument("--dilation-window", type=float, metavar="REL", help="override the ± relative lattice-scale window")
+    p.add_argument("--g-range-per-nm", type=float, nargs=2, metavar=("LO", "HI"),
+                   help="g range of the profile in which rings could be detected (default: the observed rings)")
+    p.add_argument("--phases", nargs="*", metavar="PHASE", help="score only against these phases")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    import sys
+
+    from ..errors import RingidError
+    from ..identify import WINDOW_BY_CALIBRATION, IdentifySettings, identify, load_library, read_observed_rings, write_results
+
+    obs, rows = read_observed_rings(args.rings)
+    library = load_library(args.library)
+    if args.phases:
+        missing = sorted(set(args.phases) - {p.phase for p in library})
+        if missing:
+            raise RingidError(args.library, f"phase(s) not in the library: {', '.join(missing)}")
+        library = [p for p in library if p.phase in set(args.phases)]
+    settings = IdentifySettings(dilation_window=args.dilation_window or WINDOW_BY_CALIBRATION[args.calibration_kind])
+    if args.dilation_window is not None and not 0 < args.dilation_window < 0.5:
+        raise RingidError(None, f"--dilation-window must be between 0 and 0.5, got {args.dilation_window}")
+    result = identify(obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None)
+    write_results(args.output, rows, obs, result, settings,
+                  provenance={"rings": str(args.rings), "library": str(args.library), "n_library_phases": len(library)})
+    answer = "; ".join(f"{p} ({c:.2f})" for p, c in zip(result.phases, result.confidence)) or "no phase identified"
+    print(f"{args.rings}: {answer}; {result.unexplained_rings} unexplained of {len(obs)} rings", file=sys.stderr)
+    return 0
