@@ -86,6 +86,8 @@ class GeometryFit:
     n_iterations: int
     points: SectorPoints | None
     coarse: CoarseCenter | None = None
+    min_radius_px: float = math.nan
+    max_radius_px: float = math.nan
     flags: tuple[str, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
 
@@ -252,51 +254,64 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
     cols = (flat_idx % nx).astype(np.float32)
     vals = data.reshape(-1)[flat_idx].astype(np.float32)
 
-    def offsets(cx, cy, eps, ang, sel=None):
+    def offsets(cx, cy, eps, ang, r, c):
         inv = undistortion_matrix(eps, ang).astype(np.float32)
-        c = cols if sel is None else cols[sel]
-        r = rows if sel is None else rows[sel]
         dx = c - np.float32(cx)
         dy = r - np.float32(cy)
         return inv[0, 0] * dx + inv[0, 1] * dy, inv[1, 0] * dx + inv[1, 1] * dy
 
-    ux, uy = offsets(cx, cy, eps, ang)
-    rad = np.sqrt(ux * ux + uy * uy)
-    del ux, uy
-    if min_radius_px is None:
-        min_radius_px = _first_covered_radius(rad) + 8.0
-    ring_r, ring_fwhm, _ = find_rings(rad, vals, max_rings=max_rings, min_radius_px=min_radius_px)
-    if ring_r.size == 0:
-        raise RingidError(path, "no ring found to fit the centre on")
-    flags: list[str] = []
-    if ring_r.size < 2:
-        flags.append("single_ring_center")
+    full_rows, full_cols, full_vals = rows, cols, vals
+    limits = {}
 
-    # keep only pixels near the rings for the iterations (a radius look-up table, not a loop over rings)
-    margin = 3.0 * ring_fwhm + 6.0
-    lut_n = int((ring_r.max() + margin.max()) / RADIAL_STEP_PX) + 2
-    lut = np.zeros(lut_n, bool)
-    for rk, mk in zip(ring_r, margin):
-        lut[int(max(rk - mk, 0) / RADIAL_STEP_PX) : int((rk + mk) / RADIAL_STEP_PX) + 1] = True
-    sel = np.flatnonzero(lut[np.minimum((rad / RADIAL_STEP_PX).astype(np.int64), lut_n - 1)])
-    rows, cols, vals = rows[sel], cols[sel], vals[sel]
-    del rad, sel
+    def detect(cx, cy, eps, ang):
+        """Rings in the radial profile at this geometry, and the pixels near them."""
+        ux, uy = offsets(cx, cy, eps, ang, full_rows, full_cols)
+        rad = np.sqrt(ux * ux + uy * uy)
+        del ux, uy
+        if "min" not in limits:
+            limits["min"] = _first_covered_radius(rad) + 8.0 if min_radius_px is None else float(min_radius_px)
+            limits["max"] = _last_covered_radius(rad)
+        ring_r, ring_fwhm, _ = find_rings(rad, full_vals, max_rings=max_rings, min_radius_px=limits["min"])
+        if ring_r.size == 0:
+            raise RingidError(path, "no ring found to fit the centre on")
+        # start with windows wide enough for a ring smeared by an uncorrected ellipse (ε up
+        # to about 3 %), narrowed to the measured widths once the geometry has settled
+        if fit_ellipse:
+            ring_fwhm = np.maximum(ring_fwhm, 3.0 + 0.03 * ring_r)
+        # keep only pixels near the rings (a radius look-up table, not a loop over rings)
+        margin = 3.0 * ring_fwhm + 6.0
+        lut_n = int((ring_r.max() + margin.max()) / RADIAL_STEP_PX) + 2
+        lut = np.zeros(lut_n, bool)
+        for rk, mk in zip(ring_r, margin):
+            lut[int(max(rk - mk, 0) / RADIAL_STEP_PX) : int((rk + mk) / RADIAL_STEP_PX) + 1] = True
+        sel = np.flatnonzero(lut[np.minimum((rad / RADIAL_STEP_PX).astype(np.int64), lut_n - 1)])
+        return ring_r, ring_fwhm, full_rows[sel], full_cols[sel], full_vals[sel]
 
-    # iterate on a quarter of the pixels until the centre moves < 0.05 px, then on all of them
+    ring_r, ring_fwhm, all_rows, all_cols, all_vals = detect(cx, cy, eps, ang)
+    detected_at = (cx, cy, eps, ang)
+    n_detect = 1
+
+    # iterate on a quarter of the pixels until the centre moves < 0.05 px, then on all of
+    # them; when the geometry has moved by > 1.5 px since the rings were found (a poor
+    # start), find them again at the new geometry
     fit = None
     points = None
     n_iter = 0
     radii = ring_r.copy()
-    all_rows, all_cols, all_vals = rows, cols, vals
+    moved = math.inf
     stride = 4 if all_vals.size > 400_000 else 1
     phase_tol = 0.05 if stride > 1 else tolerance_px
-    while n_iter < max_iter:
+    while n_iter < max_iter + 2 * (n_detect - 1):
         n_iter += 1
         rows, cols, vals = all_rows[::stride], all_cols[::stride], all_vals[::stride]
         geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=ang)
-        ux, uy = offsets(cx, cy, eps, ang)
-        points = _sector_points(ux, uy, vals, radii, ring_fwhm, n_sectors, geometry)
+        ux, uy = offsets(cx, cy, eps, ang, rows, cols)
+        points, widths = _sector_points(ux, uy, vals, radii, ring_fwhm, n_sectors, geometry)
         del ux, uy
+        # windows follow the ring widths measured at the current geometry once it has
+        # settled (before, an uncorrected ellipse smears a ring into a double horn)
+        if moved < 0.5:
+            ring_fwhm = np.where(np.isfinite(widths), np.clip(widths, 1.0, 3.0 * ring_fwhm), ring_fwhm)
         n_used = np.unique(points.ring_index).size
         if points.radius_px.size < 6 + n_used:
             raise RingidError(path, "too few ring sectors with signal to fit the centre")
@@ -312,12 +327,40 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
         e_move = math.hypot(fit.e1, fit.e2) * float(radii.max())
         sigma_now = math.sqrt(max(0.5 * (fit.covariance[0, 0] + fit.covariance[1, 1]), 0.0))
         moved = max(math.hypot(*shift), e_move)
+        drift = math.hypot(cx - detected_at[0], cy - detected_at[1]) + \
+            abs(eps - detected_at[2]) * float(radii.max())
+        if drift > 1.5 and n_detect < 3 and moved < 1.0:
+            ring_r, ring_fwhm, all_rows, all_cols, all_vals = detect(cx, cy, eps, ang)
+            detected_at = (cx, cy, eps, ang)
+            n_detect += 1
+            radii = ring_r.copy()
+            moved = math.inf
+            stride = 4 if all_vals.size > 400_000 else 1
+            phase_tol = 0.05 if stride > 1 else tolerance_px
+            continue
         if stride > 1:
             if moved < phase_tol or n_iter >= max_iter - 2:
                 stride, phase_tol = 1, tolerance_px
             continue
         if moved < max(tolerance_px, 0.3 * sigma_now):
             break
+    min_radius_px, max_radius_px = limits["min"], limits["max"]
+    flags: list[str] = []
+    if radii.size < 2:
+        flags.append("single_ring_center")
+    # drop rings that had fewer than 3 usable sectors in the last pass
+    n_pts = np.bincount(points.ring_index, minlength=radii.size)
+    keep_rings = n_pts >= 3
+    if not keep_rings.all():
+        remap = np.cumsum(keep_rings) - 1
+        sel_pts = keep_rings[points.ring_index]
+        points = SectorPoints(geometry=points.geometry, ring_index=remap[points.ring_index[sel_pts]],
+                              azimuth_rad=points.azimuth_rad[sel_pts], radius_px=points.radius_px[sel_pts],
+                              sigma_px=points.sigma_px[sel_pts])
+        radii, ring_fwhm = radii[keep_rings], ring_fwhm[keep_rings]
+        ring_sigma = fit.ring_radius_sigma_px[keep_rings]
+    else:
+        ring_sigma = fit.ring_radius_sigma_px
     cov = fit.covariance
     center_sigma = math.sqrt(max(0.5 * (cov[0, 0] + cov[1, 1]), 0.0))
     eps_sigma = ang_sigma = float("nan")
@@ -329,8 +372,9 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
     geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=ang,
                         center_sigma_px=center_sigma)
     return GeometryFit(geometry=geometry, ellipticity_sigma=eps_sigma, ellipse_angle_sigma_deg=ang_sigma,
-                       ring_radius_px=radii, ring_radius_sigma_px=fit.ring_radius_sigma_px, ring_fwhm_px=ring_fwhm,
-                       rms_px=fit.rms_px, n_iterations=n_iter, points=points, coarse=coarse, flags=tuple(flags))
+                       ring_radius_px=radii, ring_radius_sigma_px=ring_sigma, ring_fwhm_px=ring_fwhm,
+                       rms_px=fit.rms_px, n_iterations=n_iter, points=points, coarse=coarse,
+                       min_radius_px=float(min_radius_px), max_radius_px=max_radius_px, flags=tuple(flags))
 
 
 def _first_covered_radius(rad: np.ndarray) -> float:
@@ -346,6 +390,15 @@ def _first_covered_radius(rad: np.ndarray) -> float:
         if good[i : i + 5].all():
             return float(r[i])
     return 0.0
+
+
+def _last_covered_radius(rad: np.ndarray, coverage_min: float = 0.3) -> float:
+    """Largest radius whose 2 px annulus is still at least ``coverage_min`` inside the valid image."""
+    step = 2.0
+    counts = np.bincount((rad / step).astype(np.int64))
+    r = (np.arange(counts.size) + 0.5) * step
+    good = np.flatnonzero(counts / (2 * np.pi * r * step) >= coverage_min)
+    return float(r[good[-1]]) if good.size else 0.0
 
 
 def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoints:
@@ -428,9 +481,39 @@ def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoin
     good &= np.abs(centroid) < cen_half[:, None]
     k_idx, s_idx = np.nonzero(good)
     psi_c = -np.pi + (s_idx + 0.5) * (2 * np.pi / n_sectors)
-    return SectorPoints(geometry=geometry, ring_index=k_idx, azimuth_rad=psi_c,
-                        radius_px=radii[k_idx] + centroid[k_idx, s_idx],
-                        sigma_px=np.sqrt(var_c[k_idx, s_idx]))
+    points = SectorPoints(geometry=geometry, ring_index=k_idx, azimuth_rad=psi_c,
+                          radius_px=radii[k_idx] + centroid[k_idx, s_idx],
+                          sigma_px=np.sqrt(var_c[k_idx, s_idx]))
+    # ring widths in this frame, from the all-sector profile: half-maximum width above a linear background
+    with np.errstate(invalid="ignore", divide="ignore"):
+        prof = tot.sum(1) / cnt.sum(1)
+    widths = np.full(n_rings, np.nan)
+    for k in range(n_rings):
+        y = prof[k, : nb_ring[k]]
+        fin = np.isfinite(y)
+        if fin.sum() < 6:
+            continue
+        if not fin.all():  # an empty edge bin (the window is cut on the 0.25 px grid)
+            y = np.interp(np.arange(y.size), np.flatnonzero(fin), y[fin])
+        e = edge_n[k]
+        base = np.linspace(y[:e].mean(), y[-e:].mean(), y.size)
+        z = y - base
+        i0 = int(np.argmax(z))
+        half_max = 0.5 * z[i0]
+        if half_max <= 0:
+            continue
+        lo = i0
+        while lo > 0 and z[lo - 1] > half_max:
+            lo -= 1
+        hi = i0
+        while hi < z.size - 1 and z[hi + 1] > half_max:
+            hi += 1
+        if lo == 0 or hi == z.size - 1:
+            continue
+        left = lo - (z[lo] - half_max) / (z[lo] - z[lo - 1])
+        right = hi + (z[hi] - half_max) / (z[hi] - z[hi + 1])
+        widths[k] = (right - left) * step
+    return points, widths
 
 
 def refine_sample_center(data: np.ndarray, mask: np.ndarray | None, calibration: Geometry, *,
@@ -472,4 +555,5 @@ def refine_sample_center(data: np.ndarray, mask: np.ndarray | None, calibration:
     return GeometryFit(geometry=g, ellipticity_sigma=float("nan"), ellipse_angle_sigma_deg=float("nan"),
                        ring_radius_px=fixed.ring_radius_px, ring_radius_sigma_px=fixed.ring_radius_sigma_px,
                        ring_fwhm_px=fixed.ring_fwhm_px, rms_px=fixed.rms_px, n_iterations=fixed.n_iterations,
-                       points=fixed.points, coarse=fixed.coarse, flags=tuple(flags), notes=tuple(notes))
+                       points=fixed.points, coarse=fixed.coarse, min_radius_px=fixed.min_radius_px,
+                       max_radius_px=fixed.max_radius_px, flags=tuple(flags), notes=tuple(notes))

@@ -185,8 +185,11 @@ def fit_sector_positions(ring_index: np.ndarray, azimuth_rad: np.ndarray, radius
     e1 = e2 = 0.0
     if fit_distortion:
         e1, e2 = sol[2], sol[3]
-    radii = sol[n_shared:]
+    radii = sol[n_shared:].copy()
     rsig = np.sqrt(np.clip(np.diag(cov)[n_shared:], 0, None))
+    unmeasured = np.bincount(ring_index, minlength=n_rings) == 0
+    radii[unmeasured] = np.nan
+    rsig[unmeasured] = np.nan
     rms = float(np.sqrt(np.sum(((radius_px - design @ sol) ** 2) * weight * robust) / np.sum(weight * robust)))
     return SectorFit(
         delta_x_px=float(sol[0]), delta_y_px=float(sol[1]), e1=float(e1), e2=float(e2),

@@ -323,6 +323,12 @@ def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturatio
         if n_bs:
             notes.append(f"beam stop shadow masked ({n_bs} px)")
             mask |= shadow
+            if center_hint is None:
+                # the shadow breaks the point symmetry: find the centre again without it
+                from .center import coarse_center
+
+                cc = coarse_center(data, mask)
+                rough = (cc.center_x_px, cc.center_y_px)
         else:
             shadow = None
     return MaskResult(mask=mask, n_invalid=n_invalid, n_saturated=n_sat, n_hot=n_hot, n_dead=n_dead,
