@@ -20,6 +20,8 @@ from .errors import RingidError
 # (module under ringid.commands, one-line help) in pipeline order
 COMMANDS = [
     ("library", "build and inspect the phase library from CIF files"),
+    ("simulate", "write a synthetic ring pattern of a phase as a TIFF (demo and test data)"),
+    ("calibrate", "camera constant, centre and ellipse from a pattern of a standard film"),
     ("identify", "score a sample's rings against the phase library"),
 ]
 

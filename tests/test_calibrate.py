@@ -130,3 +130,30 @@ def test_calibrated_sample_d_spacings(au):
     # source: issue 3 target, calibrated d within 0.1 % (median)
     assert np.nanmedian(rel) < 1e-3
     assert np.isfinite(g_fit).sum() >= 5
+
+
+def test_cli_simulate_then_calibrate(tmp_path, capsys):
+    from ringid.cli import main
+
+    tif = tmp_path / "au.tif"
+    # source: DESIGN.md handbook wavelength at 200 kV; L = 300 mm, p = 30 um
+    assert main(["simulate", "--pyfai-calibrant", "Au", "--camera-length-mm", "300", "--pixel-size-um", "30",
+                 "--shape", "768", "768", "--ellipticity", "0.015", "--ellipse-angle-deg", "60", "--beam-stop",
+                 "--seed", "3", "-o", str(tif)]) == 0
+    truth = json.loads(tif.with_suffix(".json").read_text())
+    out = tmp_path / "cal.json"
+    assert main(["calibrate", str(tif), "--pyfai-calibrant", "Au", "--voltage-kv", "200", "--camera-length-mm",
+                 "330", "--pixel-size-um", "30", "-o", str(out)]) == 0
+    rec = json.loads(out.read_text())
+    assert rec["camera_constant_A_px"] == pytest.approx(truth["camera_constant_A_px"], rel=5e-4)
+    assert rec["camera_length_mm"] == pytest.approx(300.0, rel=5e-4)
+    # a pattern with two rings only: refused, exit status 1, one line naming the file
+    two = tmp_path / "two.npy"
+    sim = simulate_pattern([2.35454987, 2.0391], [100, 50], shape=(256, 256), camera_constant_A_px=200.0)
+    np.save(two, sim.image)
+    capsys.readouterr()
+    assert main(["calibrate", str(two), "--pyfai-calibrant", "Au", "--voltage-kv", "200", "-o",
+                 str(tmp_path / "x.json")]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and str(two) in err[0] and "at least 3" in err[0]
+    assert not (tmp_path / "x.json").exists()
