@@ -534,23 +534,19 @@ def refine_sample_center(data: np.ndarray, mask: np.ndarray | None, calibration:
     flags = list(fixed.flags)
     notes = list(fixed.notes)
     g = fixed.geometry
-    try:
-        free = refine_geometry(data, mask, center_guess=(g.center_x_px, g.center_y_px),
-                               ellipticity=calibration.ellipticity, ellipse_angle_deg=calibration.ellipse_angle_deg,
-                               fit_ellipse=True, n_sectors=n_sectors, max_iter=4, path=path)
-    except RingidError:
-        free = None
-    if free is not None and np.isfinite(free.ellipticity_sigma):
-        # compare as 2-vectors (ε cos 2θ, ε sin 2θ) so that the angle of a small ε does not matter
-        def vec(e, a):
-            return np.array([e * math.cos(math.radians(2 * a)), e * math.sin(math.radians(2 * a))])
-
-        diff = float(np.hypot(*(vec(free.geometry.ellipticity, free.geometry.ellipse_angle_deg)
-                                - vec(calibration.ellipticity, calibration.ellipse_angle_deg))))
-        notes.append(f"own ellipse fit: ellipticity {free.geometry.ellipticity:.5f} at "
-                     f"{free.geometry.ellipse_angle_deg:.1f} deg (calibration {calibration.ellipticity:.5f} at "
-                     f"{calibration.ellipse_angle_deg:.1f} deg)")
-        if diff > disagreement_abs and diff > disagreement_sigma * free.ellipticity_sigma:
+    pts = fixed.points
+    # the sample's own ellipse: one linearised fit of a residual ellipse to the final sector
+    # points, which were measured in the calibration's undistorted frame
+    if pts is not None and np.unique(pts.ring_index).size >= 2:
+        free = fit_sector_positions(pts.ring_index, pts.azimuth_rad, pts.radius_px, pts.sigma_px,
+                                    fixed.ring_radius_px.size, fit_distortion=True)
+        own_eps, own_ang = compose_distortion(calibration.ellipticity, calibration.ellipse_angle_deg, free.e1, free.e2)
+        # residual ellipse |(e₁, e₂)| ≈ Δε/2 whatever the angle
+        diff = 2.0 * math.hypot(free.e1, free.e2)
+        e_sig = 2.0 * math.sqrt(max(0.5 * (free.covariance[2, 2] + free.covariance[3, 3]), 0.0))
+        notes.append(f"own ellipse fit: ellipticity {own_eps:.5f} at {own_ang:.1f} deg "
+                     f"(calibration {calibration.ellipticity:.5f} at {calibration.ellipse_angle_deg:.1f} deg)")
+        if diff > disagreement_abs and diff > disagreement_sigma * e_sig:
             flags.append("ellipticity_disagrees_with_calibration")
     return GeometryFit(geometry=g, ellipticity_sigma=float("nan"), ellipse_angle_sigma_deg=float("nan"),
                        ring_radius_px=fixed.ring_radius_px, ring_radius_sigma_px=fixed.ring_radius_sigma_px,

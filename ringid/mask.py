@@ -179,7 +179,7 @@ def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: floa
 
     ny, nx = data.shape
     if block is None:
-        block = max(1, int(math.ceil(max(ny, nx) / 512)))
+        block = max(1, int(math.ceil(max(ny, nx) / 384)))
     small, frac = block_mean(data, valid, block)
     my, mx = small.shape
     yy = (np.arange(my) * block + (block - 1) / 2.0 - center_y_px)[:, None]

@@ -157,3 +157,26 @@ def test_cli_simulate_then_calibrate(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and str(two) in err[0] and "at least 3" in err[0]
     assert not (tmp_path / "x.json").exists()
+
+
+@pytest.mark.slow
+def test_accuracy_grid_meets_issue_targets():
+    """The 32-pattern accuracy grid of benchmarks/bench_image.py at 1024², against the issue 3 targets."""
+    import importlib.util
+    from pathlib import Path
+
+    spec = importlib.util.spec_from_file_location(
+        "bench_image", Path(__file__).resolve().parents[1] / "benchmarks" / "bench_image.py")
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    rows = bench.bench_grid(1024, quiet=True)
+    assert len(rows) >= 30
+    centre = np.array([r["center_err_px"] for r in rows])
+    # source: issue 3 accuracy targets
+    assert np.median(centre) <= 0.1 and centre.max() <= 0.3
+    assert max(r["eps_err"] for r in rows) <= 5e-4
+    assert max(r["angle_err_deg"] for r in rows if r["eps"] >= 0.005) <= 2.0
+    assert max(r["k_err_rel"] for r in rows) <= 5e-4
+    assert np.median([r["sample_d_err_median"] for r in rows]) <= 1e-3
+    sample_centre = np.array([r["sample_center_err_px"] for r in rows])
+    assert np.median(sample_centre) <= 0.1 and sample_centre.max() <= 0.3
