@@ -1,0 +1,804 @@
+"""Rings of a 1D profile: significance-tested detection and joint pseudo-Voigt fitting.
+
+Detection (:func:`detect_rings`) is a multi-scale matched filter run as a matching pursuit on the
+background-subtracted profile. At each scale s (Gaussian σ in bins, from the instrumental width
+to the widest halo, steps of √2) the statistic
+
+    T_s(i) = Σ_j k_s(j) r(i+j) / σ²(i+j)  /  √( Σ_j k_s(j)² / σ²(i+j) )
+
+is the signal-to-noise ratio of the compensated (zero-mean) kernel
+k(x) = exp(−x²/2c²) − ½ exp(−x²/8c²), c = 1.6534 s (a difference of Gaussians, blind to a
+constant or linear background error, matched to a Gaussian ring of standard deviation s). For pure noise with the stated σ, T_s(i) is standard normal. The
+detection threshold z follows from the false-alarm probability α per profile with a Bonferroni
+(look-elsewhere) correction over the M independent resolution elements searched,
+M = Σ_scales (g range / FWHM_scale):  z = Φ⁻¹(1 − α/M). The largest T above z is taken, its
+Gaussian is subtracted, and the search repeats, so close rings are separated down to the
+smallest scale (the instrumental FWHM) and a weak ring on the flank of a strong one is found
+after the strong one is removed.
+
+Fitting (:func:`fit_rings`) is one joint bounded least-squares problem (scipy
+``least_squares``, trust-region reflective, analytic Jacobian) of all components, each a
+normalised pseudo-Voigt A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, on top of
+the background. Uncertainties are the square roots of the diagonal of (JᵀJ)⁻¹·χ²_ν, the
+covariance scaled by the reduced χ². After a fit the residual is searched again at the same
+threshold (components missed the first time are added), and components whose fitted area is
+not significant (A/σ_A below ``confirm_sigma``) are dropped before a refit.
+
+:func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,
+crystallinity and (with a cake) ring character.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import RingidError
+from .model import Profile, Ring
+
+LN2 = math.log(2.0)
+GAUSS_HEIGHT = 2.0 * math.sqrt(LN2 / math.pi)  # peak height × FWHM of a unit-area Gaussian
+LORENTZ_HEIGHT = 2.0 / math.pi  # peak height × FWHM of a unit-area Lorentzian
+FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * LN2)
+# The kernel k_s(x) = exp(−x²/2s²) − ½exp(−x²/8s²) gives the largest SNR on a Gaussian peak of
+# standard deviation σ when s = 1.6534 σ (computed numerically by maximising ⟨k_s, G_σ⟩/‖k_s‖).
+DOG_MATCH = 1.6534
+
+
+@dataclass(frozen=True)
+class FittedRing(Ring):
+    """A :class:`ringid.model.Ring` with the extra fitted quantities needed downstream.
+
+    breadth_per_nm is the integral breadth β = area/height of the fitted pseudo-Voigt (1/nm),
+    with its standard uncertainty from the covariance of (FWHM, η).
+    """
+
+    eta_sigma: float = math.nan
+    breadth_per_nm: float = math.nan
+    breadth_sigma_per_nm: float = math.nan
+    height: float = math.nan
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """A detected ring before fitting: position (1/nm), FWHM estimate (1/nm), SNR, area estimate."""
+
+    g_per_nm: float
+    fwhm_per_nm: float
+    snr: float
+    area: float
+    eta: float = 0.3
+
+
+@dataclass(frozen=True)
+class RingFit:
+    """Result of detection + joint fitting of one profile.
+
+    background and model are on the profile's g grid (model = background + all components);
+    threshold_sigma is the detection threshold z for the false-alarm probability per profile
+    ``false_alarm_probability`` over ``n_resolution_elements`` independent tests.
+    """
+
+    rings: tuple[FittedRing, ...]
+    background: np.ndarray
+    model: np.ndarray
+    chi2_reduced: float
+    threshold_sigma: float
+    false_alarm_probability: float
+    n_resolution_elements: float
+    flags: tuple[str, ...] = ()
+
+
+# ---------------------------------------------------------------- line shapes
+
+
+def pseudo_voigt(g, g0, fwhm, eta, area=1.0):
+    """Area-normalised pseudo-Voigt η·L + (1−η)·G with common FWHM (1/nm); times ``area``."""
+    x = np.asarray(g, dtype=float) - g0
+    u = 4.0 * (x / fwhm) ** 2
+    gauss = GAUSS_HEIGHT / fwhm * np.exp(-LN2 * u)
+    lorentz = LORENTZ_HEIGHT / fwhm / (1.0 + u)
+    return area * (eta * lorentz + (1.0 - eta) * gauss)
+
+
+def pseudo_voigt_integral_breadth(fwhm, eta):
+    """Integral breadth β = area/height of a pseudo-Voigt: β = Γ / [η·2/π + (1−η)·2√(ln2/π)].
+
+    Limits: Gaussian β = 1.0645 Γ, Lorentzian β = (π/2) Γ (METHODS.md §5).
+    """
+    return fwhm / (eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT)
+
+
+def _components_and_jacobian(g, params, n_comp, want_jac=True):
+    p = params.reshape(n_comp, 4)
+    g0, fwhm, eta, area = p[:, 0:1], p[:, 1:2], p[:, 2:3], p[:, 3:4]
+    x = g[None, :] - g0
+    u = 4.0 * (x / fwhm) ** 2
+    e = np.exp(-LN2 * u)
+    gauss = GAUSS_HEIGHT / fwhm * e
+    lorentz = LORENTZ_HEIGHT / fwhm / (1.0 + u)
+    shape = eta * lorentz + (1.0 - eta) * gauss
+    comps = area * shape
+    if not want_jac:
+        return comps, None
+    # derivatives of each component with respect to its 4 parameters, shape (n_comp, 4, n_g)
+    dg_dg0 = gauss * (8.0 * LN2 * x / fwhm**2)
+    dl_dg0 = lorentz * (8.0 * x / fwhm**2) / (1.0 + u)
+    dg_dw = gauss * (-1.0 / fwhm + 2.0 * LN2 * u / fwhm)
+    dl_dw = lorentz * (-1.0 / fwhm + 2.0 * u / fwhm / (1.0 + u))
+    jac = np.empty((n_comp, 4, g.size))
+    jac[:, 0] = area * (eta * dl_dg0 + (1.0 - eta) * dg_dg0)
+    jac[:, 1] = area * (eta * dl_dw + (1.0 - eta) * dg_dw)
+    jac[:, 2] = area * (lorentz - gauss)
+    jac[:, 3] = shape
+    return comps, jac
+
+
+# ---------------------------------------------------------------- detection
+
+
+def detection_threshold(false_alarm_probability: float, n_resolution_elements: float) -> float:
+    """One-sided Gaussian threshold z with P(any of M independent N(0,1) > z) ≤ α (Bonferroni)."""
+    from scipy.special import ndtri
+
+    if not 0.0 < false_alarm_probability < 1.0:
+        raise ValueError(f"false_alarm_probability must be in (0, 1), got {false_alarm_probability}")
+    return float(ndtri(1.0 - false_alarm_probability / max(1.0, n_resolution_elements)))
+
+
+def _scales_bins(step, fwhm_min_per_nm, fwhm_max_per_nm):
+    s_min = max(fwhm_min_per_nm / step / FWHM_PER_SIGMA, 0.8)
+    s_max = max(fwhm_max_per_nm / step / FWHM_PER_SIGMA, s_min)
+    n = int(math.floor(math.log(s_max / s_min) / math.log(math.sqrt(2.0)))) + 1
+    return s_min * math.sqrt(2.0) ** np.arange(n)
+
+
+class _MatchedFilter:
+    """FFT-based multi-scale compensated matched filter on a fixed weight vector."""
+
+    def __init__(self, weight: np.ndarray, scales_bins: np.ndarray):
+        n = weight.size
+        self.n = n
+        self.scales = scales_bins
+        self.half = [int(math.ceil(6.0 * DOG_MATCH * s)) for s in scales_bins]
+        self.nfft = 1 << int(math.ceil(math.log2(n + 2 * max(self.half) + 1)))
+        self.kernel_ft, self.sqrt_den, self.amp_den, self.inside = [], [], [], []
+        w_ft = np.fft.rfft(weight, self.nfft)
+        idx = np.arange(n)
+        for s_peak, h in zip(scales_bins, self.half):
+            s = DOG_MATCH * s_peak
+            x = np.arange(-h, h + 1, dtype=float)
+            gauss = np.exp(-0.5 * (x / s_peak) ** 2)
+            kern = np.exp(-0.5 * (x / s) ** 2) - 0.5 * np.exp(-0.125 * (x / s) ** 2)
+            kft = self._kernel_ft(kern, h)
+            self.kernel_ft.append(kft)
+            den = self._apply(w_ft, self._kernel_ft(kern**2, h))
+            self.sqrt_den.append(np.sqrt(np.clip(den, 1e-300, None)))
+            self.amp_den.append(self._apply(w_ft, self._kernel_ft(kern * gauss, h)))
+            # only positions whose kernel, with most of its negative lobes (±4 s), lies inside the
+            # profile: nearer the ends the kernel is no longer compensated
+            core = int(math.ceil(4.0 * s))  # s is the kernel scale here
+            self.inside.append((idx >= core) & (idx < n - core))
+
+    def _kernel_ft(self, kern, h):
+        buf = np.zeros(self.nfft)
+        buf[: h + 1] = kern[h:]
+        buf[-h:] = kern[:h]
+        return np.fft.rfft(buf)
+
+    def _apply(self, signal_ft, kernel_ft):
+        return np.fft.irfft(signal_ft * kernel_ft, self.nfft)[: self.n]
+
+    def snr_and_amplitude(self, weighted_residual: np.ndarray):
+        r_ft = np.fft.rfft(weighted_residual, self.nfft)
+        snr = np.empty((len(self.scales), self.n))
+        amp = np.empty_like(snr)
+        for k in range(len(self.scales)):
+            num = self._apply(r_ft, self.kernel_ft[k])
+            snr[k] = np.where(self.inside[k], num / self.sqrt_den[k], -np.inf)
+            amp[k] = num / np.where(self.amp_den[k] > 0, self.amp_den[k], np.inf)
+        return snr, amp
+
+
+def _n_resolution_elements(g_range, step, scales_bins):
+    return float(sum(g_range / max(s * step * FWHM_PER_SIGMA, step) for s in scales_bins))
+
+
+def detect_rings(
+    g_per_nm,
+    residual,
+    sigma,
+    *,
+    fwhm_min_per_nm: float,
+    fwhm_max_per_nm: float,
+    threshold_sigma: float,
+    max_components: int = 60,
+) -> list[Candidate]:
+    """Scale-space detection of rings in a background-subtracted profile.
+
+    At every scale the local maxima in g of the matched-filter SNR T_s above
+    ``threshold_sigma`` are found. They are taken from the finest scale up, so that close rings
+    are separated at the smallest width that resolves them; a maximum at a coarser scale closer
+    than half its FWHM to one already taken is the same feature (or a blend of taken ones) and
+    is skipped. Each taken maximum is followed up through the scales while it stays a maximum
+    and its SNR grows; the scale where it stops sets the width estimate.
+
+    Parameters
+    ----------
+    g_per_nm : uniform g grid (1/nm)
+    residual : profile minus background (and minus any already fitted components)
+    sigma : standard uncertainty per bin; bins with non-finite or non-positive σ are ignored
+    fwhm_min_per_nm, fwhm_max_per_nm : range of ring widths searched (instrumental FWHM to the
+        widest halo)
+    threshold_sigma : detection threshold z on the matched-filter SNR (see :func:`detection_threshold`)
+
+    Returns
+    -------
+    Candidates, strongest first (at most ``max_components``).
+    """
+    from scipy.signal import argrelmax
+
+    g = np.asarray(g_per_nm, dtype=float)
+    step = float(np.median(np.diff(g)))
+    sigma = np.asarray(sigma, dtype=float)
+    ok = np.isfinite(sigma) & (sigma > 0) & np.isfinite(residual)
+    weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
+    r = np.where(ok, residual, 0.0).astype(float)
+    scales = _scales_bins(step, fwhm_min_per_nm, fwhm_max_per_nm)
+    snr, amp = _MatchedFilter(weight, scales).snr_and_amplitude(r * weight)
+    finite_snr = np.where(np.isfinite(snr), snr, -1e300)
+    maxima = [argrelmax(finite_snr[k], order=1, mode="clip")[0] for k in range(len(scales))]
+    taken: list[int] = []  # positions (bins) of accepted candidates
+    found: list[Candidate] = []
+    for k, idx in enumerate(maxima):
+        half = 0.5 * FWHM_PER_SIGMA * scales[k]
+        for i in idx[np.argsort(-snr[k, idx])]:
+            if not snr[k, i] > threshold_sigma:
+                break
+            if any(abs(i - t) < half for t in taken):
+                continue
+            # follow the maximum up through the scales while its SNR grows
+            kk, ii = k, i
+            while kk + 1 < len(scales):
+                nxt = maxima[kk + 1]
+                near = nxt[np.abs(nxt - ii) <= max(1.0, 0.5 * FWHM_PER_SIGMA * scales[kk])]
+                if near.size == 0:
+                    break
+                j = near[np.argmax(snr[kk + 1, near])]
+                if snr[kk + 1, j] <= snr[kk, ii]:
+                    break
+                kk, ii = kk + 1, j
+            taken.append(i)
+            s = scales[kk]
+            found.append(
+                Candidate(
+                    g_per_nm=float(g[i]),
+                    fwhm_per_nm=float(s * step * FWHM_PER_SIGMA),
+                    snr=float(snr[kk, ii]),
+                    area=float(max(amp[kk, ii], 0.0) * s * step * math.sqrt(2.0 * math.pi)),
+                )
+            )
+    found.sort(key=lambda c: -c.snr)
+    return found[:max_components]
+
+
+# ---------------------------------------------------------------- fitting
+
+
+def _instrument_fwhm_array(instrument, g):
+    if instrument is None:
+        return None
+    if callable(getattr(instrument, "fwhm_per_nm", None)):
+        return np.asarray(instrument.fwhm_per_nm(g), dtype=float) * np.ones_like(g)
+    if callable(instrument):
+        return np.asarray(instrument(g), dtype=float) * np.ones_like(g)
+    return np.full_like(g, float(instrument))
+
+
+def _hat_basis(g, spacing_per_nm):
+    """Linear B-spline (hat) functions with knots every ``spacing_per_nm`` across g; (n_knots, n_g)."""
+    lo, hi = float(g[0]), float(g[-1])
+    n_int = max(1, int(math.ceil((hi - lo) / spacing_per_nm)))
+    knots = np.linspace(lo, hi, n_int + 1)
+    h = knots[1] - knots[0]
+    return np.clip(1.0 - np.abs(g[None, :] - knots[:, None]) / h, 0.0, None)
+
+
+@dataclass
+class _Fit:
+    params: np.ndarray  # (n_comp, 4): g0, fwhm, eta, area
+    cov: np.ndarray  # covariance of the component parameters (4 n_comp square)
+    chi2_nu: float
+    comps: np.ndarray  # (n_comp, n_g) component curves on the full grid
+    correction: np.ndarray  # fitted smooth background correction on the full grid
+    converged: bool = True
+
+
+def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis):
+    """Joint bounded least squares of pseudo-Voigt components plus a smooth background correction."""
+    from scipy.optimize import least_squares
+
+    n_comp = len(cands)
+    gs, ys, ws = g[ok], (y - background)[ok], 1.0 / sigma[ok]
+    bas = basis[:, ok]
+    n_bas = bas.shape[0]
+    step = float(np.median(np.diff(g)))
+    x0, lo, hi = [], [], []
+    for c in cands:
+        w0 = float(np.clip(c.fwhm_per_nm, fwhm_lo * 1.01, fwhm_hi * 0.99))
+        dg = max(w0, 2.0 * step)
+        a0 = max(c.area, 1e-12)
+        x0 += [c.g_per_nm, w0, float(np.clip(c.eta, 0.0, 1.0)), a0]
+        lo += [c.g_per_nm - dg, fwhm_lo, 0.0, 0.0]
+        hi += [c.g_per_nm + dg, fwhm_hi, 1.0, np.inf]
+    sig_scale = float(np.median(sigma[ok]))
+    x0 = np.array(x0 + [0.0] * n_bas)
+    lo = np.array(lo + [-np.inf] * n_bas)
+    hi = np.array(hi + [np.inf] * n_bas)
+    scale = np.abs(x0) + 1e-12
+    scale[0 : 4 * n_comp : 4] = np.maximum(x0[1 : 4 * n_comp : 4], step)  # positions scaled by widths
+    scale[4 * n_comp :] = sig_scale
+    bas_w = (bas * ws).T
+
+    def fun(p):
+        comps, _ = _components_and_jacobian(gs, p[: 4 * n_comp], n_comp, want_jac=False)
+        return (comps.sum(axis=0) + p[4 * n_comp :] @ bas - ys) * ws
+
+    def jac(p):
+        _, jc = _components_and_jacobian(gs, p[: 4 * n_comp], n_comp)
+        return np.hstack([(jc.reshape(4 * n_comp, gs.size) * ws).T, bas_w])
+
+    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-6, xtol=1e-6)
+    p = res.x
+    dof = max(gs.size - p.size, 1)
+    chi2_nu = float(np.sum(res.fun**2) / dof)
+    J = res.jac
+    # covariance (JᵀJ)⁻¹ χ²_ν via SVD (pseudo-inverse for degenerate directions)
+    _, sv, vt = np.linalg.svd(J, full_matrices=False)
+    tol = np.finfo(float).eps * max(J.shape) * (sv[0] if sv.size else 0.0)
+    inv = np.where(sv > tol, 1.0 / np.where(sv > tol, sv, 1.0) ** 2, 0.0)
+    cov = ((vt.T * inv) @ vt * chi2_nu)[: 4 * n_comp, : 4 * n_comp]
+    comps, _ = _components_and_jacobian(g, p[: 4 * n_comp], n_comp, want_jac=False)
+    return _Fit(p[: 4 * n_comp].reshape(n_comp, 4), cov, chi2_nu, comps, p[4 * n_comp :] @ basis, res.status > 0)
+
+
+def _height(c: Candidate) -> float:
+    return c.area / float(pseudo_voigt_integral_breadth(c.fwhm_per_nm, c.eta))
+
+
+def _resolved_from(new: Candidate, existing: list[Candidate], shape_tolerance: float = 0.0) -> bool:
+    """Whether a residual detection is a separate component rather than a misfit of one we have.
+
+    Within a factor 3 in width, two components closer than 0.75 × the larger FWHM are not
+    resolved (the resolution limit of the detection); a component (not much broader) within
+    3 FWHM of one more than 1/``shape_tolerance`` times higher is taken for the misfit of that
+    one's shape.
+    A much broader component (a halo) under narrow ones is kept only if its area is at least
+    ``shape_tolerance`` times the area of the rings within its FWHM.
+    """
+    under = 0.0
+    for c in existing:
+        ratio = max(new.fwhm_per_nm, c.fwhm_per_nm) / min(new.fwhm_per_nm, c.fwhm_per_nm)
+        sep = abs(new.g_per_nm - c.g_per_nm)
+        wmax = max(new.fwhm_per_nm, c.fwhm_per_nm)
+        if ratio >= 3.0 and new.fwhm_per_nm > c.fwhm_per_nm:
+            if sep < new.fwhm_per_nm:
+                under += c.area
+            continue
+        if ratio < 3.0 and sep < 0.75 * wmax:
+            return False
+        if sep < 3.0 * wmax and _height(new) < shape_tolerance * _height(c):
+            return False
+    return not (under > 0 and new.area < shape_tolerance * under)
+
+
+def _weakest_dropped(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0) -> np.ndarray:
+    """Keep-mask that drops only the least significant component, if it is below confirm_sigma.
+
+    One at a time: components that share one feature are each insignificant while together
+    they are not, and dropping all of them at once would lose the feature. A component pressed
+    against the narrowest allowed width (sharper than the instrument) counts as insignificant.
+    """
+    area_sigma = np.sqrt(np.clip(np.diag(fit.cov)[3::4], 0.0, None))
+    z = fit.params[:, 3] / np.where(area_sigma > 0, area_sigma, np.inf)
+    z = np.where(fit.params[:, 1] <= 1.02 * fwhm_floor, 0.0, z)
+    keep = np.ones(len(z), bool)
+    k = int(np.argmin(z))
+    if z[k] < confirm_sigma:
+        keep[k] = False
+    return keep
+
+
+def _significant(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0) -> np.ndarray:
+    """Components whose area is significant and whose width is not pressed against the floor."""
+    area_sigma = np.sqrt(np.clip(np.diag(fit.cov)[3::4], 0.0, None))
+    significant = fit.params[:, 3] >= confirm_sigma * np.where(area_sigma > 0, area_sigma, np.inf)
+    return significant & (fit.params[:, 1] > 1.02 * fwhm_floor)
+
+
+def fit_rings(
+    profile: Profile,
+    background: np.ndarray | None = None,
+    *,
+    instrument=None,
+    false_alarm_probability: float = 0.01,
+    halo_min_fwhm_per_nm: float = 0.74,
+    fwhm_max_per_nm: float | None = None,
+    confirm_sigma: float = 3.0,
+    max_rounds: int = 6,
+    max_components: int = 60,
+    correction_spacing_per_nm: float = 2.0,
+    max_new_per_round: int = 8,
+    background_iterations: int = 2,
+    cleaned_smooth_per_nm: float = 0.2,
+    shape_tolerance: float = 0.05,
+) -> RingFit:
+    """Detect and jointly fit the rings and halos of a 1D profile.
+
+    Parameters
+    ----------
+    profile : :class:`ringid.model.Profile` (uniform g grid in 1/nm)
+    background : background array; default :func:`ringid.background.estimate_background`
+    instrument : instrumental FWHM: a number (1/nm), a callable g ↦ FWHM, or an object with a
+        ``fwhm_per_nm(g)`` method (:class:`ringid.size.InstrumentProfile`); sets the narrowest
+        width searched. Default: 3 bins.
+    false_alarm_probability : α, probability per profile that pure noise gives one or more
+        detections (Bonferroni over the resolution elements searched).
+    halo_min_fwhm_per_nm : components at least this broad are reported with kind="halo"
+        (see :class:`ringid.crystallinity.CrystallinityThresholds`).
+    fwhm_max_per_nm : widest component searched (default: the background window, 2 nm⁻¹).
+    confirm_sigma : a fitted component is kept only if area/σ_area ≥ this.
+    shape_tolerance : the pseudo-Voigt describes a real ring (a Voigt, a size-broadened ring)
+        to a few percent of its height; residual structure next to or under a ring weaker than
+        this fraction of it (height for neighbours, area for a broad component under rings) is
+        taken for shape misfit, not a new ring.
+    correction_spacing_per_nm : knot spacing of the smooth additive background correction
+        (linear B-splines) fitted jointly with the rings; at least twice the widest component,
+        so that it takes up the bias of the clipped background but not a halo.
+
+    Returns
+    -------
+    :class:`RingFit`, rings sorted by g.
+    """
+    from .background import DEFAULT_WINDOW_PER_NM, estimate_background, valid_mask
+
+    g = np.asarray(profile.g_per_nm, dtype=float)
+    y = np.asarray(profile.intensity, dtype=float)
+    sigma = np.asarray(profile.sigma, dtype=float)
+    if g.ndim != 1 or g.size < 8 or y.shape != g.shape or sigma.shape != g.shape:
+        raise RingidError(None, "profile arrays must be 1D of equal length ≥ 8")
+    steps = np.diff(g)
+    step = float(np.median(steps))
+    if not step > 0 or np.any(steps <= 0) or np.max(np.abs(steps - step)) > 0.01 * step:
+        raise RingidError(None, "profile g grid must be uniform and increasing")
+    ok = valid_mask(y, sigma)
+    flags: list[str] = []
+    background_given = background is not None
+    if background is None:
+        background = estimate_background(g, y, sigma)
+    background = np.asarray(background, dtype=float)
+    instr = _instrument_fwhm_array(instrument, g)
+    # narrowest ring the fit allows: 0.7 × the instrumental FWHM (nothing is sharper than the
+    # instrument; the margin takes its uncertainty); the detection searches down to half the
+    # instrumental width, where the compensated kernel still separates rings 1 FWHM apart
+    fwhm_narrowest = max(float(np.nanmin(instr)) if instr is not None else 3.0 * step, 2.0 * step)
+    fwhm_min = max(0.5 * fwhm_narrowest, 1.5 * step)
+    fwhm_max = DEFAULT_WINDOW_PER_NM if fwhm_max_per_nm is None else float(fwhm_max_per_nm)
+    fwhm_max = max(fwhm_max, fwhm_min)
+    g_range = float(g[ok].max() - g[ok].min()) if ok.sum() > 1 else 0.0
+    n_res = _n_resolution_elements(g_range, step, _scales_bins(step, fwhm_min, fwhm_max))
+    z = detection_threshold(false_alarm_probability, n_res)
+    empty = RingFit((), background, background.copy(), math.nan, z, false_alarm_probability, n_res, ())
+    if ok.sum() < 8:
+        return RingFit((), background, background.copy(), math.nan, z, false_alarm_probability, n_res, ("no_valid_bins",))
+
+    detect = dict(fwhm_min_per_nm=fwhm_min, fwhm_max_per_nm=fwhm_max, threshold_sigma=z)
+    fwhm_lo, fwhm_hi = 0.7 * fwhm_narrowest, 1.5 * fwhm_max
+    basis = _hat_basis(g, max(correction_spacing_per_nm, 2.0 * fwhm_max))
+
+    def run(cands_, bg_, hi):
+        return _fit_components(g, y, sigma, ok, bg_, cands_, fwhm_lo, hi, basis)
+
+    def warm(fit_, cands_, keep_):
+        """Candidates carrying the fitted values, so that a refit starts from the last solution."""
+        return [
+            Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
+            for p, c, k in zip(fit_.params, cands_, keep_)
+            if k
+        ]
+
+    def prune(fit_, cands_, bg_, hi):
+        """Drop the least significant component and refit, until every one is significant."""
+        while fit_ is not None and fit_.converged:
+            keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo)
+            if keep_.all():
+                break
+            rejected.extend(c for c, k in zip(cands_, keep_) if not k)
+            cands_ = warm(fit_, cands_, keep_)
+            fit_ = run(cands_, bg_, hi) if cands_ else None
+        return fit_, cands_
+
+    def peel(cands_, bg_, hi):
+        """Fit; drop what is not significant; add what the residual still shows; repeat."""
+        fit_, cands_ = prune(run(cands_, bg_, hi), cands_, bg_, hi)
+        for _ in range(max_rounds):
+            if fit_ is None:
+                return None, [], True
+            kept_ = warm(fit_, cands_, np.ones(len(cands_), bool))
+            model_ = bg_ + fit_.correction + fit_.comps.sum(axis=0)
+            extra_ = [
+                c
+                for c in detect_rings(g, y - model_, sigma, max_components=max_components, **detect)
+                if c.fwhm_per_nm < hi and _resolved_from(c, kept_, shape_tolerance) and _resolved_from(c, rejected)
+            ][: max(0, min(max_new_per_round, max_components - len(kept_)))]
+            if not extra_ and fit_.converged:
+                return fit_, cands_, True
+            cands_ = kept_ + extra_
+            fit_, cands_ = prune(run(cands_, bg_, hi), cands_, bg_, hi)
+        return fit_, cands_, False
+
+    rejected: list[Candidate] = []
+    settled = True
+    # Stage A: the narrow rings alone. The tails of many close rings pile up into a broad
+    # pedestal that a clipped background cannot tell from a halo; so the rings are fitted
+    # first, and the background is clipped again from the profile with the fitted rings taken
+    # out (dips deeper than 2σ below the first background are misfits, not background, and are
+    # floored there).
+    cands = [
+        c
+        for c in detect_rings(g, y - background, sigma, max_components=max_components, **detect)
+        if c.fwhm_per_nm < halo_min_fwhm_per_nm
+    ]
+    fit = None
+    if cands:
+        fit, cands = prune(run(cands, background, halo_min_fwhm_per_nm), cands, background, halo_min_fwhm_per_nm)
+        for _ in range(0 if background_given else background_iterations):
+            if fit is None or not fit.converged:
+                break
+            cleaned = np.maximum(y - fit.comps.sum(axis=0), background - 2.0 * np.where(ok, sigma, 0.0))
+            background = estimate_background(g, cleaned, sigma, smooth_per_nm=cleaned_smooth_per_nm)
+            fit = run(warm(fit, cands, np.ones(len(cands), bool)), background, halo_min_fwhm_per_nm)
+    # Stage B: everything, halos included, searched on the residual of stage A.
+    if fit is not None:
+        keep = _significant(fit, confirm_sigma, fwhm_lo) if fit.converged else np.ones(len(cands), bool)
+        cands = warm(fit, cands, keep)
+        rest = y - background - fit.correction - fit.comps[keep].sum(axis=0)
+    else:
+        cands, rest = [], y - background
+    cands = cands + [
+        c
+        for c in detect_rings(g, rest, sigma, max_components=max(1, max_components - len(cands)), **detect)
+        if _resolved_from(c, cands, shape_tolerance)
+    ][:max_new_per_round]
+    if not cands:
+        return empty
+    fit, cands, settled_b = peel(cands, background, fwhm_hi)
+    if fit is None:
+        return empty
+    if not (settled and settled_b):
+        flags.append("ring_search_not_converged")
+    if not fit.converged:
+        flags.append("fit_not_converged")
+    params, cov, chi2_nu, comps = fit.params, fit.cov, fit.chi2_nu, fit.comps
+    background = background + fit.correction
+
+    rings = []
+    for k, (p, c) in enumerate(zip(params, cands)):
+        g0, fwhm, eta, area = map(float, p)
+        var = np.diag(cov)[4 * k : 4 * k + 4]
+        sd = np.sqrt(np.clip(var, 0.0, None))
+        breadth = float(pseudo_voigt_integral_breadth(fwhm, eta))
+        # σ_β from the (Γ, η) block of the covariance
+        den = eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT
+        grad = np.array([1.0 / den, -fwhm * (LORENTZ_HEIGHT - GAUSS_HEIGHT) / den**2])
+        block = cov[4 * k + 1 : 4 * k + 3, 4 * k + 1 : 4 * k + 3]
+        breadth_sigma = float(math.sqrt(max(grad @ block @ grad, 0.0)))
+        rings.append(
+            FittedRing(
+                g_per_nm=g0,
+                g_sigma_per_nm=float(sd[0]),
+                fwhm_per_nm=fwhm,
+                fwhm_sigma_per_nm=float(sd[1]),
+                eta=eta,
+                area=area,
+                area_sigma=float(sd[3]),
+                kind="halo" if fwhm >= halo_min_fwhm_per_nm else "ring",
+                significance=float(c.snr),
+                eta_sigma=float(sd[2]),
+                breadth_per_nm=breadth,
+                breadth_sigma_per_nm=breadth_sigma,
+                height=area / breadth,
+            )
+        )
+    order = np.argsort([r.g_per_nm for r in rings])
+    rings = tuple(rings[i] for i in order)
+    model = background + comps.sum(axis=0)
+    return RingFit(rings, background, model, chi2_nu, z, false_alarm_probability, n_res, tuple(flags))
+
+
+# ---------------------------------------------------------------- the whole stage
+
+
+@dataclass(frozen=True)
+class RingAnalysis:
+    """Everything the ring stage measures on one profile.
+
+    rings (sorted by g), with ring_sizes and characters in the same order; background and model
+    on the profile's g grid; crystallinity (:class:`ringid.crystallinity.Crystallinity`); size
+    (:class:`ringid.size.SizeEstimate`); flags (sorted, unique).
+    """
+
+    rings: tuple[FittedRing, ...]
+    background: np.ndarray
+    model: np.ndarray
+    chi2_reduced: float
+    crystallinity: object
+    size: object
+    ring_sizes: tuple = ()
+    characters: tuple = ()
+    flags: tuple[str, ...] = ()
+    threshold_sigma: float = math.nan
+    false_alarm_probability: float = math.nan
+
+
+def analyze_profile(
+    profile: Profile,
+    *,
+    instrument=None,
+    thresholds=None,
+    character_thresholds=None,
+    false_alarm_probability: float = 0.01,
+    shape_constant: float | None = None,
+) -> RingAnalysis:
+    """Background, ring detection and fitting, size, crystallinity and ring character of a profile.
+
+    Parameters
+    ----------
+    profile : :class:`ringid.model.Profile` on a uniform g grid (1/nm), with the cake if available
+    instrument : :class:`ringid.size.InstrumentProfile` from the calibration (FWHM(g), η), or a
+        number (constant FWHM in 1/nm, Gaussian), or None (no instrument removal: sizes are
+        lower limits, flag ``instrument_width_unknown``)
+    thresholds : :class:`ringid.crystallinity.CrystallinityThresholds`
+    character_thresholds : :class:`ringid.character.CharacterThresholds`
+    false_alarm_probability : probability per profile that noise alone gives a ring (α)
+    shape_constant : Scherrer K (default 4/3: sphere diameter on the integral breadth)
+
+    Returns
+    -------
+    :class:`RingAnalysis`
+    """
+    from .character import CharacterThresholds, pattern_character
+    from .crystallinity import CrystallinityThresholds, classify
+    from .size import K_SPHERE_DIAMETER, InstrumentProfile, sample_size
+
+    thresholds = CrystallinityThresholds() if thresholds is None else thresholds
+    character_thresholds = CharacterThresholds() if character_thresholds is None else character_thresholds
+    shape_constant = K_SPHERE_DIAMETER if shape_constant is None else shape_constant
+    if instrument is not None and not isinstance(instrument, InstrumentProfile):
+        instrument = InstrumentProfile(float(instrument), 0.0, 0.0)
+    fit = fit_rings(
+        profile,
+        instrument=instrument,
+        false_alarm_probability=false_alarm_probability,
+        halo_min_fwhm_per_nm=thresholds.halo_min_fwhm_per_nm,
+    )
+    flags = set(fit.flags)
+    usable = "no_valid_bins" not in flags
+    crystallinity = classify(fit.rings, thresholds, usable=usable)
+    flags.update(crystallinity.flags)
+    size, ring_sizes = sample_size(fit.rings, instrument, shape_constant=shape_constant)
+    if instrument is None and fit.rings:
+        flags.add("instrument_width_unknown")
+    if size.is_lower_limit:
+        flags.add("size_is_lower_limit")
+    characters, character_flags = pattern_character(profile, fit.rings, fit.background, character_thresholds)
+    flags.update(character_flags)
+    return RingAnalysis(
+        rings=fit.rings,
+        background=fit.background,
+        model=fit.model,
+        chi2_reduced=fit.chi2_reduced,
+        crystallinity=crystallinity,
+        size=size,
+        ring_sizes=ring_sizes,
+        characters=characters,
+        flags=tuple(sorted(flags)),
+        threshold_sigma=fit.threshold_sigma,
+        false_alarm_probability=fit.false_alarm_probability,
+    )
+
+
+# ---------------------------------------------------------------- writers
+
+RINGS_CSV_COLUMNS = [
+    "g_per_nm",
+    "g_sigma_per_nm",
+    "d_angstrom",
+    "d_sigma_angstrom",
+    "fwhm_per_nm",
+    "fwhm_sigma_per_nm",
+    "eta",
+    "area",
+    "area_sigma",
+    "kind",
+    "significance",
+    "size_nm",
+    "size_sigma_nm",
+    "size_lower_limit_nm",
+    "character",
+    "n_grains",
+    "texture_direction_deg",
+    "phase",
+    "hkl",
+]
+
+PROFILE_CSV_COLUMNS = ["g_per_nm", "intensity", "sigma", "background", "model"]
+
+
+def _fmt(x, digits=6):
+    if x is None:
+        return ""
+    if isinstance(x, str):
+        return x
+    x = float(x)
+    if math.isnan(x):
+        return ""
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    return f"{x:.{digits}g}"
+
+
+def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
+    """Write ``rings.csv`` (DESIGN.md contract) atomically, one row per ring, sorted by g.
+
+    assignments : optional sequence (one per ring) of ``(phase, hkl)`` pairs or None, filled by
+        phase identification; the ``phase`` and ``hkl`` columns are empty without it.
+    """
+    from .atomic import write_csv
+
+    n = len(analysis.rings)
+    if assignments is not None and len(assignments) != n:
+        raise RingidError(path, f"{len(assignments)} assignments given for {n} rings")
+    rows = []
+    for k, r in enumerate(analysis.rings):
+        s = analysis.ring_sizes[k] if k < len(analysis.ring_sizes) else None
+        c = analysis.characters[k] if k < len(analysis.characters) else None
+        phase, hkl = ("", "") if assignments is None or assignments[k] is None else assignments[k]
+        rows.append(
+            [
+                _fmt(r.g_per_nm, 8),
+                _fmt(r.g_sigma_per_nm, 3),
+                _fmt(r.d_angstrom, 7),
+                _fmt(r.d_sigma_angstrom, 3),
+                _fmt(r.fwhm_per_nm, 5),
+                _fmt(r.fwhm_sigma_per_nm, 3),
+                _fmt(r.eta, 3),
+                _fmt(r.area, 6),
+                _fmt(r.area_sigma, 3),
+                r.kind,
+                _fmt(r.significance, 4),
+                _fmt(s.size_nm if s else None, 4),
+                _fmt(s.size_sigma_nm if s else None, 2),
+                _fmt(s.lower_limit_nm if s else None, 3),
+                c.character if c else "",
+                _fmt(c.n_grains if c else None, 3),
+                _fmt(c.texture_direction_deg if c and c.character == "textured" else None, 4),
+                phase,
+                hkl,
+            ]
+        )
+    write_csv(path, RINGS_CSV_COLUMNS, rows)
+
+
+def write_profile_csv(path, profile: Profile, analysis: RingAnalysis) -> None:
+    """Write ``profile.csv`` (g_per_nm, intensity, sigma, background, model) atomically."""
+    from .atomic import write_csv
+
+    cols = [profile.g_per_nm, profile.intensity, profile.sigma, analysis.background, analysis.model]
+    n = len(profile.g_per_nm)
+    if any(len(c) != n for c in cols):
+        raise RingidError(path, "profile and analysis arrays differ in length")
+    rows = ([_fmt(c[i], 8) for c in cols] for i in range(n))
+    write_csv(path, PROFILE_CSV_COLUMNS, rows)
