@@ -97,13 +97,14 @@ def block_mean(data: np.ndarray, valid: np.ndarray | None, block: int) -> tuple[
     ny, nx = data.shape
     my, mx = ny // block, nx // block
     d = data[: my * block, : mx * block]
+    # sum the contiguous axis first (fast), in float32 (tile sums stay exact well past 10⁶ counts)
     if valid is None:
-        s = d.reshape(my, block, mx, block).sum(axis=(1, 3), dtype=np.float64)
+        s = d.astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
         n = np.full(s.shape, float(block * block))
     else:
         v = valid[: my * block, : mx * block]
-        s = np.where(v, d, 0).reshape(my, block, mx, block).sum(axis=(1, 3), dtype=np.float64)
-        n = v.reshape(my, block, mx, block).sum(axis=(1, 3), dtype=np.float64)
+        s = np.where(v, d, np.float32(0)).astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
+        n = v.reshape(my, block, mx, block).sum(3, dtype=np.int32).sum(1)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(n > 0, s / np.maximum(n, 1), 0.0)
     return mean.astype(np.float32), (n / (block * block)).astype(np.float32)
@@ -278,13 +279,7 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
         # to about 3 %), narrowed to the measured widths once the geometry has settled
         if fit_ellipse:
             ring_fwhm = np.maximum(ring_fwhm, 3.0 + 0.03 * ring_r)
-        # keep only pixels near the rings (a radius look-up table, not a loop over rings)
-        margin = 3.0 * ring_fwhm + 6.0
-        lut_n = int((ring_r.max() + margin.max()) / RADIAL_STEP_PX) + 2
-        lut = np.zeros(lut_n, bool)
-        for rk, mk in zip(ring_r, margin):
-            lut[int(max(rk - mk, 0) / RADIAL_STEP_PX) : int((rk + mk) / RADIAL_STEP_PX) + 1] = True
-        sel = np.flatnonzero(lut[np.minimum((rad / RADIAL_STEP_PX).astype(np.int64), lut_n - 1)])
+        sel = _near_rings(rad, ring_r, 3.0 * ring_fwhm + 6.0)
         return ring_r, ring_fwhm, full_rows[sel], full_cols[sel], full_vals[sel]
 
     ring_r, ring_fwhm, all_rows, all_cols, all_vals = detect(cx, cy, eps, ang)
@@ -308,10 +303,6 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
         ux, uy = offsets(cx, cy, eps, ang, rows, cols)
         points, widths = _sector_points(ux, uy, vals, radii, ring_fwhm, n_sectors, geometry)
         del ux, uy
-        # windows follow the ring widths measured at the current geometry once it has
-        # settled (before, an uncorrected ellipse smears a ring into a double horn)
-        if moved < 0.5:
-            ring_fwhm = np.where(np.isfinite(widths), np.clip(widths, 1.0, 3.0 * ring_fwhm), ring_fwhm)
         n_used = np.unique(points.ring_index).size
         if points.radius_px.size < 6 + n_used:
             raise RingidError(path, "too few ring sectors with signal to fit the centre")
@@ -327,6 +318,10 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
         e_move = math.hypot(fit.e1, fit.e2) * float(radii.max())
         sigma_now = math.sqrt(max(0.5 * (fit.covariance[0, 0] + fit.covariance[1, 1]), 0.0))
         moved = max(math.hypot(*shift), e_move)
+        # windows follow the ring widths measured in this pass when its geometry was within
+        # 0.5 px of the result (before, an uncorrected ellipse smears a ring into a double horn)
+        if moved < 0.5:
+            ring_fwhm = np.where(np.isfinite(widths), np.clip(widths, 1.0, 3.0 * ring_fwhm), ring_fwhm)
         drift = math.hypot(cx - detected_at[0], cy - detected_at[1]) + \
             abs(eps - detected_at[2]) * float(radii.max())
         if drift > 1.5 and n_detect < 3 and moved < 1.0:
@@ -341,6 +336,13 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
         if stride > 1:
             if moved < phase_tol or n_iter >= max_iter - 2:
                 stride, phase_tol = 1, tolerance_px
+                # the windows have narrowed to the measured widths: drop the pixels outside them
+                ux, uy = offsets(cx, cy, eps, ang, all_rows, all_cols)
+                rad = np.sqrt(ux * ux + uy * uy)
+                del ux, uy
+                keep = _near_rings(rad, radii, 3.0 * ring_fwhm + 6.0)
+                all_rows, all_cols, all_vals = all_rows[keep], all_cols[keep], all_vals[keep]
+                del rad, keep
             continue
         if moved < max(tolerance_px, 0.3 * sigma_now):
             break
@@ -375,6 +377,15 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
                        ring_radius_px=radii, ring_radius_sigma_px=ring_sigma, ring_fwhm_px=ring_fwhm,
                        rms_px=fit.rms_px, n_iterations=n_iter, points=points, coarse=coarse,
                        min_radius_px=float(min_radius_px), max_radius_px=max_radius_px, flags=tuple(flags))
+
+
+def _near_rings(rad: np.ndarray, radii: np.ndarray, margin: np.ndarray) -> np.ndarray:
+    """Indices of the entries of ``rad`` within ``margin`` of a ring radius (a look-up table, not a loop)."""
+    lut_n = int((radii.max() + margin.max()) / RADIAL_STEP_PX) + 2
+    lut = np.zeros(lut_n, bool)
+    for rk, mk in zip(radii, margin):
+        lut[int(max(rk - mk, 0) / RADIAL_STEP_PX) : int((rk + mk) / RADIAL_STEP_PX) + 1] = True
+    return np.flatnonzero(lut[np.minimum((rad / RADIAL_STEP_PX).astype(np.int64), lut_n - 1)])
 
 
 def _first_covered_radius(rad: np.ndarray) -> float:
