@@ -533,11 +533,12 @@ def refine_sample_center(data: np.ndarray, mask: np.ndarray | None, calibration:
     """Centre of a sample pattern at its calibration's ε and θ, with a check of its own ellipse.
 
     Beam shifts move the centre, not the lens distortion, so the sample keeps the
-    calibration's ε and θ and only its centre is refined. Its rings are also fitted
-    with a free ellipse; when that ε differs from the calibration's by more than
-    ``disagreement_sigma`` standard uncertainties and more than ``disagreement_abs``
-    (absolute), the flag ``ellipticity_disagrees_with_calibration`` is set and the
-    sample's own value is given in the notes.
+    calibration's ε and θ and only its centre is refined. A residual ellipse is then
+    fitted (one linear least-squares step) to the final sector positions, which were
+    measured in the calibration's undistorted frame; when the ε difference it implies
+    exceeds ``disagreement_sigma`` standard uncertainties and ``disagreement_abs``
+    (absolute), the flag ``ellipticity_disagrees_with_calibration`` is set. The
+    sample's own ε and θ are given in the notes either way.
     """
     fixed = refine_geometry(data, mask, center_guess=center_guess, ellipticity=calibration.ellipticity,
                             ellipse_angle_deg=calibration.ellipse_angle_deg, fit_ellipse=False,

@@ -78,3 +78,33 @@ def test_poisson_uncertainty_and_mask():
     assert prof.sigma[i] == pytest.approx(np.sqrt(img[in_bin].mean() / in_bin.sum()), rel=0.05)
     assert prof.intensity[i] == pytest.approx(img[in_bin].mean(), rel=1e-4)
     assert np.nanmean(prof.intensity) == pytest.approx(100.0, rel=0.01)
+
+
+def test_process_image_sample_and_halo_only(tmp_path):
+    import tifffile
+
+    from ringid.integrate import process_image
+
+    cal = Geometry(300.0, 300.0, 0.02, 40.0, camera_constant_A_px=600.0, voltage_kv=200.0)
+    # source: pyFAI calibrant table "Al" d(111), d(200), d(220), d(311)
+    d_al = [2.33803, 2.0248, 1.43174, 1.22098]
+    sim = simulate_pattern(d_al, [100, 50, 30, 30], shape=(768, 768), camera_constant_A_px=600.0, ellipticity=0.02,
+                           ellipse_angle_deg=40.0, center_x_px=400.4, center_y_px=370.9, beam_stop=True, seed=9)
+    p = tmp_path / "al.tif"
+    tifffile.imwrite(p, sim.image)
+    res = process_image(p, cal)
+    g = res.geometry
+    assert abs(g.center_x_px - 400.4) < 0.1 and abs(g.center_y_px - 370.9) < 0.1
+    assert g.ellipticity == 0.02 and g.camera_constant_A_px == 600.0
+    assert res.mask.n_beam_stop > 0 and set(res.timings_s) == {"load", "mask", "center", "integrate"}
+    peak = res.profile.g_per_nm[np.nanargmax(np.where(res.profile.g_per_nm > 3.0, res.profile.intensity, np.nan))]
+    assert peak == pytest.approx(10.0 / d_al[0], abs=0.02)
+    # a broad halo only (amorphous film): no ring to centre on is not an error
+    halo = simulate_pattern([2.0], [1.0], shape=(512, 512), camera_constant_A_px=400.0, center_x_px=260.0,
+                            center_y_px=250.0, ring_area_counts_per_nm=0.0,
+                            halo=lambda gg: 400.0 * np.exp(-0.5 * ((gg - 4.0) / 0.6) ** 2), seed=10)
+    q = tmp_path / "halo.npy"
+    np.save(q, halo.image)
+    res2 = process_image(q, Geometry(255.5, 255.5, camera_constant_A_px=400.0, voltage_kv=200.0))
+    assert abs(res2.geometry.center_x_px - 260.0) < 2.0 and abs(res2.geometry.center_y_px - 250.0) < 2.0
+    assert np.nanmax(res2.profile.intensity[res2.profile.g_per_nm > 2.0]) > 100
