@@ -180,3 +180,26 @@ def test_accuracy_grid_meets_issue_targets():
     assert np.median([r["sample_d_err_median"] for r in rows]) <= 1e-3
     sample_centre = np.array([r["sample_center_err_px"] for r in rows])
     assert np.median(sample_centre) <= 0.1 and sample_centre.max() <= 0.3
+
+
+def test_cli_with_library_standard_and_search(tmp_path):
+    """Library ring list (kinematic intensities) for both simulation and calibration, no nominal K (search)."""
+    from pathlib import Path
+
+    from ringid.cli import main
+    from ringid.library import build_phase
+
+    cif = Path(__file__).resolve().parents[1] / "reference_phases" / "Au.cif"
+    lib = tmp_path / "lib"
+    assert build_phase(cif, lib)["status"] == "ok"
+    tif = tmp_path / "au_lib.tif"
+    assert main(["simulate", "--phase", "Au", "--library", str(lib), "--camera-constant-A-px", "420",
+                 "--shape", "768", "768", "--center-x-px", "400.2", "--center-y-px", "350.7", "--ellipticity", "0.01",
+                 "--dose", "0.2", "--n-grains", "2000", "--seed", "5", "-o", str(tif)]) == 0
+    out = tmp_path / "cal.json"
+    assert main(["calibrate", str(tif), "--standard", "Au", "--library", str(lib), "--voltage-kv", "200",
+                 "-o", str(out)]) == 0
+    rec = json.loads(out.read_text())
+    # source: issue 3 target, K within 0.05 %
+    assert rec["camera_constant_A_px"] == pytest.approx(420.0, rel=5e-4)
+    assert rec["rings"][0]["hkl"].replace(" ", "") in ("111", "(111)")
