@@ -203,3 +203,41 @@ def test_cli_with_library_standard_and_search(tmp_path):
     # source: issue 3 target, K within 0.05 %
     assert rec["camera_constant_A_px"] == pytest.approx(420.0, rel=5e-4)
     assert rec["rings"][0]["hkl"].replace(" ", "") in ("111", "(111)")
+
+
+def test_pattern_drawn_by_pyfai_geometry():
+    """Outside check: rings rendered by pyFAI's own geometry (Calibrant.fake_calibration_image), not our simulator.
+
+    pyFAI draws a flat detector exactly (R = L·tan 2θ), while ringid's convention is d = K/R
+    with K = λL/p; the difference is the small-angle projection term (about 1.5θ², 0.04 %
+    at the outer rings here), so K agrees with λL/p to the 0.05 % target and the ring
+    residuals grow with g.
+    """
+    import pyFAI.calibrant
+    from pyFAI.detectors import Detector
+    from pyFAI.integrator.azimuthal import AzimuthalIntegrator
+
+    from ringid.units import electron_wavelength_angstrom
+
+    lam_m = electron_wavelength_angstrom(200.0) * 1e-10
+    # source: DESIGN.md handbook wavelength 200 kV = 2.5079 pm
+    assert lam_m == pytest.approx(2.5079e-12, rel=5e-5)
+    pixel_m, dist_m, cx, cy = 30e-6, 0.25, 540.3, 490.8
+    ai = AzimuthalIntegrator(dist=dist_m, poni1=(cy + 0.5) * pixel_m, poni2=(cx + 0.5) * pixel_m,
+                             detector=Detector(pixel_m, pixel_m, max_shape=(1024, 1024)), wavelength=lam_m)
+    au = pyFAI.calibrant.get_calibrant("Au")
+    au.wavelength = lam_m
+    img = au.fake_calibration_image(ai, Imax=1000.0, Imin=20.0, resolution=0.02)
+    img = np.random.default_rng(0).poisson(img).astype(np.float32)
+    d, _, hkl = pyfai_calibrant_rings("Au")
+    k_nominal = lam_m * 1e10 * dist_m / pixel_m
+    cal = calibrate_pattern(img, None, d, voltage_kv=200.0, standard_hkl=hkl,
+                            nominal_camera_constant_A_px=1.08 * k_nominal)
+    g = cal.geometry
+    # source: pyFAI convention poni = (pixel index + 0.5)·pixel size (DESIGN.md conventions)
+    assert math.hypot(g.center_x_px - cx, g.center_y_px - cy) < 0.1
+    assert g.ellipticity < 5e-4
+    assert g.camera_constant_A_px == pytest.approx(k_nominal, rel=5e-4)
+    resid = cal.ring_g_obs_per_nm / cal.ring_g_calc_per_nm - 1
+    assert np.all(np.abs(resid) < 1e-3)
+    assert np.polyfit(cal.ring_g_obs_per_nm, resid, 1)[0] > 0  # the projection term grows with g
