@@ -83,6 +83,25 @@ def _neighbour_extremes(data: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return hi, lo
 
 
+def _neighbour_extremes_rows(block: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Max and min of the eight neighbours for the inner rows of ``block`` (its first and last
+    rows are the halo); columns reflected at the edges."""
+    p = np.pad(block, ((0, 0), (1, 1)), mode="reflect")
+    n, nx = block.shape[0] - 2, block.shape[1]
+    hi = lo = None
+    for dy in (0, 1, 2):
+        for dx in (0, 1, 2):
+            if dy == 1 and dx == 1:
+                continue
+            v = p[dy : dy + n, dx : dx + nx]
+            if hi is None:
+                hi, lo = v.copy(), v.copy()
+            else:
+                np.maximum(hi, v, out=hi)
+                np.minimum(lo, v, out=lo)
+    return hi, lo
+
+
 def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: int = 200_000, seed: int = 0) -> float:
     """Variance per unit signal (1 for Poisson counts) from differences of horizontal neighbours.
 
@@ -119,13 +138,25 @@ def outlier_pixel_mask(data: np.ndarray, valid: np.ndarray | None = None, *, out
     d = data.astype(np.float32, copy=False)
     if gain is None:
         gain = noise_gain(d, valid)
-    hi, lo = _neighbour_extremes(d)
     k = np.float32(outlier_sigma)
     g = np.float32(gain)
-    # and by a factor of two: an undersampled ring crest (FWHM < 2 px) can stand 8σ above
-    # its neighbours at high counts, a defect stands far above them
-    hot = ((d - hi) > k * np.sqrt(g * np.maximum(hi, 1.0)) + 2 * g) & (d > 2.0 * hi)
-    dead = ((lo - d) > k * np.sqrt(g * np.maximum(lo, 1.0)) + 2 * g) & (d < 0.5 * lo)
+    hot = np.zeros(d.shape, bool)
+    dead = np.zeros(d.shape, bool)
+    ny = d.shape[0]
+    rows_per_block = max(1, (1 << 21) // max(d.shape[1], 1))  # ~8 MB float32 temporaries per block
+    for y0 in range(0, ny, rows_per_block):
+        y1 = min(y0 + rows_per_block, ny)
+        # one row of halo on each side (reflected at the image edges, as np.pad does)
+        lo_y, hi_y = max(y0 - 1, 0), min(y1 + 1, ny)
+        block = d[lo_y:hi_y]
+        if y0 == 0:
+            block = np.concatenate([d[1:2], block]) if ny > 1 else np.concatenate([block, block])
+        if y1 == ny:
+            block = np.concatenate([block, d[ny - 2 : ny - 1]]) if ny > 1 else np.concatenate([block, block])
+        hi, lo = _neighbour_extremes_rows(block)
+        dd = d[y0:y1]
+        hot[y0:y1] = ((dd - hi) > k * np.sqrt(g * np.maximum(hi, 1.0)) + 2 * g) & (dd > 2.0 * hi)
+        dead[y0:y1] = ((lo - dd) > k * np.sqrt(g * np.maximum(lo, 1.0)) + 2 * g) & (dd < 0.5 * lo)
     if valid is not None:
         hot &= valid
         dead &= valid
