@@ -63,26 +63,6 @@ def saturated_mask(data: np.ndarray, level: float) -> np.ndarray:
     return sat
 
 
-def _neighbour_extremes(data: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Max and min of the eight neighbours of every pixel (edges padded by reflection)."""
-    p = np.pad(data, 1, mode="reflect")
-    ny, nx = data.shape
-    hi = None
-    lo = None
-    for dy in (0, 1, 2):
-        for dx in (0, 1, 2):
-            if dy == 1 and dx == 1:
-                continue
-            v = p[dy : dy + ny, dx : dx + nx]
-            if hi is None:
-                hi = v.copy()
-                lo = v.copy()
-            else:
-                np.maximum(hi, v, out=hi)
-                np.minimum(lo, v, out=lo)
-    return hi, lo
-
-
 def _neighbour_extremes_rows(block: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Max and min of the eight neighbours for the inner rows of ``block`` (its first and last
     rows are the halo); columns reflected at the edges."""
