@@ -11,9 +11,11 @@ variance of the azimuthal intensity is therefore
 
     V = Var[I]/E[I]² = M_eff (1 + c²) / N,   i.e.  N = M_eff (1 + c²) / V.
 
-M_eff is the number of bins, or the number of spot widths around the ring when spots are wider
-than a bin; a spot is about as wide as the ring (its angular size ≈ FWHM_g / g), so
-M_eff = min(M, 2π g / FWHM_g). Counting noise adds its own relative variance V_noise, estimated
+M_eff is the number of bins, or, when spots are wider than a bin, the number of independent
+spot widths around the ring: for a spot of Gaussian azimuthal profile (standard deviation
+σ_φ in radians) the binned variance is that of cells of width 2√π σ_φ (the equivalent width of
+the squared spot profile), so M_eff = min(M, 2π / (2√π σ_φ)). A spot is about as wide as the
+ring is broad, σ_φ ≈ (FWHM_g / g) / 2.3548. Counting noise adds its own relative variance V_noise, estimated
 from the profile's σ (σ_cake ≈ σ_1D·√M for an azimuthal mean); the excess V − V_noise is what
 the grains give. The reported N assumes equal spots (c = 0): it is a lower bound when spot
 intensities vary. A ring is ``spotty`` when the excess is significant and above
@@ -23,8 +25,11 @@ around the ring: rms fluctuation > 30 %); otherwise ``continuous``.
 Texture. Friedel symmetry makes a kinematic ring centrosymmetric, so preferred orientation
 shows as even azimuthal harmonics. The ring's I_k/Ī − 1 is fitted by least squares with
 cos/sin of 2φ and 4φ; a ring is ``textured`` when the largest harmonic amplitude exceeds
-``texture_min_amplitude`` and is significant against the residual scatter (an F-like test,
-which includes the random grain noise of spotty rings). The texture direction is the azimuth of
+``texture_min_amplitude`` (default 0.15: a ±15 % modulation) and is significant against the
+residual scatter, which includes the random grain noise of spotty rings: the amplitude of a
+harmonic of pure scatter is Rayleigh distributed, P(A > a) = exp(−a²/2σ_c²), and the
+threshold is set for a false-alarm probability ``texture_false_alarm`` (default 10⁻³) over
+the two harmonics. The texture direction is the azimuth of
 the 2φ maximum, arctan2(b₂, a₂)/2, in degrees modulo 180.
 
 Single-crystal warning: a zone-axis pattern puts at most about a dozen symmetry-equivalent
@@ -48,6 +53,7 @@ class CharacterThresholds:
     spotty_min_excess_variance: float = 0.1
     texture_min_amplitude: float = 0.15
     significance_sigma: float = 3.0
+    texture_false_alarm: float = 1e-3
     single_crystal_max_grains: float = 12.0
 
 
@@ -107,7 +113,8 @@ def ring_character(
     v_noise = noise_var / mean**2
     v_excess = v_obs - v_noise
     v_sigma = v_obs * math.sqrt(2.0 / (m - 1))
-    m_eff = min(float(n_az), 2.0 * math.pi * ring.g_per_nm / ring.fwhm_per_nm)
+    sigma_phi = ring.fwhm_per_nm / ring.g_per_nm / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    m_eff = min(float(n_az), 2.0 * math.pi / (2.0 * math.sqrt(math.pi) * sigma_phi))
     spotty = v_excess > thresholds.significance_sigma * v_sigma and v_excess > thresholds.spotty_min_excess_variance
     n_grains = m_eff / v_excess if v_excess > 0 else math.inf
 
@@ -118,12 +125,16 @@ def ring_character(
     coef, *_ = np.linalg.lstsq(design, rel, rcond=None)
     resid = rel - design @ coef
     resid_var = float(np.sum(resid**2) / max(m - 4, 1))
-    amp_sigma = math.sqrt(2.0 * resid_var / m)  # σ of one harmonic amplitude from the scatter
+    # σ of one harmonic amplitude from the scatter; bins within one spot width are correlated,
+    # so at most M_eff·coverage of them are independent
+    amp_sigma = math.sqrt(2.0 * resid_var / min(m, m_eff * m / n_az))
     amps = [math.hypot(coef[0], coef[1]), math.hypot(coef[2], coef[3])]
     best = int(np.argmax(amps))
     amp = amps[best]
     direction = (math.degrees(math.atan2(coef[1], coef[0])) / 2.0) % 180.0
-    textured = amp > thresholds.texture_min_amplitude and amp > thresholds.significance_sigma * amp_sigma
+    # the amplitude of a harmonic of pure scatter is Rayleigh distributed: P(A > a) = exp(−a²/2σ²)
+    amp_threshold = amp_sigma * math.sqrt(-2.0 * math.log(thresholds.texture_false_alarm / 2.0))
+    textured = amp > thresholds.texture_min_amplitude and amp > amp_threshold
     character = "textured" if textured else ("spotty" if spotty else "continuous")
     return RingCharacter(
         character=character,
