@@ -45,6 +45,7 @@ FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * LN2)
 # The kernel k_s(x) = exp(−x²/2s²) − ½exp(−x²/8s²) gives the largest SNR on a Gaussian peak of
 # standard deviation σ when s = 1.6534 σ (computed numerically by maximising ⟨k_s, G_σ⟩/‖k_s‖).
 DOG_MATCH = 1.6534
+LSMR_ABOVE_PARAMETERS = 10**6  # LSMR measured slower here even for 30 rings; kept as a switch
 
 
 @dataclass(frozen=True)
@@ -350,7 +351,13 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis)
         _, jc = _components_and_jacobian(gs, p[: 4 * n_comp], n_comp)
         return np.hstack([(jc.reshape(4 * n_comp, gs.size) * ws).T, bas_w])
 
-    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-6, xtol=1e-6)
+    # exact trust-region steps (an SVD of J per iteration) for small problems; for many rings
+    # the iterative LSMR solver is cheaper (the covariance below still uses the full SVD)
+    solver = "exact" if x0.size <= LSMR_ABOVE_PARAMETERS else "lsmr"
+    res = least_squares(
+        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-6, xtol=1e-6,
+        tr_solver=solver,
+    )
     p = res.x
     dof = max(gs.size - p.size, 1)
     chi2_nu = float(np.sum(res.fun**2) / dof)
@@ -392,6 +399,15 @@ def _resolved_from(new: Candidate, existing: list[Candidate], shape_tolerance: f
         if sep < 3.0 * wmax and _height(new) < shape_tolerance * _height(c):
             return False
     return not (under > 0 and new.area < shape_tolerance * under)
+
+
+def _near_rejected(new: Candidate, rejected: list[Candidate]) -> bool:
+    """A residual detection within one FWHM of a dropped component (unless much broader: a halo
+    under it) is that one again."""
+    for c in rejected:
+        if new.fwhm_per_nm < 3.0 * c.fwhm_per_nm and abs(new.g_per_nm - c.g_per_nm) < max(new.fwhm_per_nm, c.fwhm_per_nm):
+            return True
+    return False
 
 
 def _weakest_dropped(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g_range=(-np.inf, np.inf)) -> np.ndarray:
@@ -546,7 +562,7 @@ def _fit_rings(profile, background, instrument, false_alarm_probability, halo_mi
             keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range)
             if keep_.all():
                 break
-            rejected.extend(c for c, k in zip(cands_, keep_) if not k)
+            rejected.extend(warm(fit_, cands_, ~keep_))
             cands_ = warm(fit_, cands_, keep_)
             fit_ = run(cands_, bg_, hi) if cands_ else None
         return fit_, cands_
@@ -562,7 +578,7 @@ def _fit_rings(profile, background, instrument, false_alarm_probability, halo_mi
             extra_ = [
                 c
                 for c in detect_rings(g, y - model_, sigma, max_components=max_components, **detect)
-                if c.fwhm_per_nm < hi and _resolved_from(c, kept_, shape_tolerance) and _resolved_from(c, rejected)
+                if c.fwhm_per_nm < hi and _resolved_from(c, kept_, shape_tolerance) and not _near_rejected(c, rejected)
             ][: max(0, min(max_new_per_round, max_components - len(kept_)))]
             if not extra_ and fit_.converged:
                 return fit_, cands_, True
@@ -584,7 +600,8 @@ def _fit_rings(profile, background, instrument, false_alarm_probability, halo_mi
     ]
     fit = None
     if cands:
-        fit, cands = prune(run(cands, background, halo_min_fwhm_per_nm), cands, background, halo_min_fwhm_per_nm)
+        first = run(cands, background, halo_min_fwhm_per_nm)
+        fit, cands = prune(first, cands, background, halo_min_fwhm_per_nm)
         for _ in range(0 if background_given else background_iterations):
             if fit is None or not fit.converged:
                 break
@@ -598,11 +615,12 @@ def _fit_rings(profile, background, instrument, false_alarm_probability, halo_mi
         rest = y - background - fit.correction - fit.comps[keep].sum(axis=0)
     else:
         cands, rest = [], y - background
-    cands = cands + [
+    extra = [
         c
         for c in detect_rings(g, rest, sigma, max_components=max(1, max_components - len(cands)), **detect)
         if _resolved_from(c, cands, shape_tolerance)
     ][:max_new_per_round]
+    cands = cands + extra
     if not cands:
         return empty
     fit, cands, settled_b = peel(cands, background, fwhm_hi)
