@@ -355,7 +355,7 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis)
     # the iterative LSMR solver is cheaper (the covariance below still uses the full SVD)
     solver = "exact" if x0.size <= LSMR_ABOVE_PARAMETERS else "lsmr"
     res = least_squares(
-        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-6, xtol=1e-6,
+        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-5, xtol=1e-5,
         tr_solver=solver,
     )
     p = res.x
