@@ -13,6 +13,15 @@ import tempfile
 from pathlib import Path
 
 
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+_UMASK = _current_umask()
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike, suffix: str = ""):
     """Yield a temporary path beside ``path``; rename it onto ``path`` on success.
@@ -23,6 +32,7 @@ def atomic_path(path: str | os.PathLike, suffix: str = ""):
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp" + suffix, dir=path.parent)
     os.close(fd)
+    os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; outputs get the usual permissions
     try:
         yield Path(tmp)
         os.replace(tmp, path)

@@ -19,10 +19,14 @@ from .errors import RingidError
 
 # (module under ringid.commands, one-line help) in pipeline order
 COMMANDS = [
+    ("demo", "write the synthetic demo patterns and sheets"),
     ("library", "build and inspect the phase library from CIF files"),
     ("simulate", "write a synthetic ring pattern of a phase as a TIFF (demo and test data)"),
     ("calibrate", "camera constant, centre and ellipse from a pattern of a standard film"),
+    ("calibration", "calibration job of the workflow: one row of the calibration sheet"),
+    ("measure", "image job of one sample: pattern -> profile -> rings"),
     ("identify", "score a sample's rings against the phase library"),
+    ("report", "summary.csv and report.html of a results folder"),
 ]
 
 

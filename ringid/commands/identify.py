@@ -11,9 +11,17 @@ from __future__ import annotations
 
 def add_parser(subparsers, name: str, help_text: str) -> None:
     p = subparsers.add_parser(name, help=help_text, description=help_text)
-    p.add_argument("rings", metavar="RINGS", help="rings table (CSV with g_per_nm, g_sigma_per_nm, fwhm_per_nm, area[, kind])")
+    p.add_argument("rings", metavar="RINGS", nargs="?",
+                   help="rings table (CSV with g_per_nm, g_sigma_per_nm, fwhm_per_nm, area[, kind])")
+    p.add_argument("--sample-dir", metavar="DIR",
+                   help="identify a measured sample folder (from ringid measure) instead of RINGS; "
+                        "writes its phases.csv, rings.csv, identification.json and overview.png")
+    p.add_argument("--window-standard", type=float, default=0.005, metavar="REL",
+                   help="with --sample-dir: dilation window for standard/constant calibrations (default 0.005)")
+    p.add_argument("--window-nominal", type=float, default=0.03, metavar="REL",
+                   help="with --sample-dir: dilation window for nominal calibrations (default 0.03)")
     p.add_argument("--library", required=True, metavar="LIB", help="phase library folder (ringid library build)")
-    p.add_argument("-o", "--output", required=True, metavar="DIR", help="folder for phases.csv, rings.csv, identification.json")
+    p.add_argument("-o", "--output", metavar="DIR", help="folder for phases.csv, rings.csv, identification.json")
     p.add_argument("--calibration-kind", choices=["standard", "constant", "nominal"], default="standard",
                    help="how the camera constant was obtained; sets the dilation window "
                         "(standard/constant: ±0.5 %%, nominal: ±3 %%)")
@@ -30,8 +38,18 @@ def run(args) -> int:
     from ..errors import RingidError
     from ..identify import WINDOW_BY_CALIBRATION, IdentifySettings, identify, load_library, read_observed_rings, write_results
 
-    obs, rows = read_observed_rings(args.rings)
     library = load_library(args.library)
+    if args.sample_dir:
+        from ..measure import identify_sample
+
+        out = identify_sample(args.sample_dir, library, window_standard=args.window_standard,
+                              window_nominal=args.window_nominal, library_dir=str(args.library))
+        answer = "; ".join(out.get("phases", [])) or ("failed: " + out["error"] if out.get("status") == "failed" else "no phase identified")
+        print(f"{args.sample_dir}: {answer}", file=sys.stderr)
+        return 0
+    if not args.rings or not args.output:
+        raise RingidError(None, "give RINGS and -o DIR, or --sample-dir DIR")
+    obs, rows = read_observed_rings(args.rings)
     if args.phases:
         missing = sorted(set(args.phases) - {p.phase for p in library})
         if missing:

@@ -1,0 +1,28 @@
+# ringid workflow: SAED ring patterns -> phases, sizes, report.
+#   snakemake --cores 2                          (the synthetic demo: run `ringid demo` first)
+#   snakemake --cores 8 --configfile my.yaml     (your sheets and CIFs)
+# Stages (ringid/workflow/rules/): library -> calibration -> sample (image work) -> identify -> report.
+
+from snakemake.utils import min_version, validate
+
+min_version("8.0")
+
+
+configfile: "config/config.yaml"
+
+
+validate(config, "config/config.schema.yaml")
+
+
+include: "ringid/workflow/rules/common.smk"
+include: "ringid/workflow/rules/library.smk"
+include: "ringid/workflow/rules/calibration.smk"
+include: "ringid/workflow/rules/sample.smk"
+include: "ringid/workflow/rules/identify.smk"
+include: "ringid/workflow/rules/report.smk"
+
+
+rule all:
+    input:
+        f"{RESULTS}/summary.csv",
+        f"{RESULTS}/report.html",

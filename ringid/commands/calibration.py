@@ -1,0 +1,35 @@
+"""``ringid calibration``: the workflow's calibration job for one row of the calibration sheet.
+
+Fits a standard film (``ringid calibrate`` does the same for one image by hand) or records a
+known or nominal camera constant. A calibration that fails is recorded with status failed and
+its reason (exit 0), and its samples fail with that reason.
+"""
+
+from __future__ import annotations
+
+
+def add_parser(subparsers, name: str, help_text: str) -> None:
+    p = subparsers.add_parser(name, help=help_text, description=help_text)
+    p.add_argument("calibration", metavar="ID", help="calibration id in the sheet")
+    p.add_argument("--sheet", required=True, metavar="CSV", help="calibration sheet")
+    p.add_argument("--library", metavar="LIB", help="phase library folder (for standard films)")
+    p.add_argument("-o", "--output", required=True, metavar="CAL.json", help="calibration record to write")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    import sys
+
+    from ..errors import RingidError
+    from ..measure import make_calibration
+    from ..sheets import read_calibrations
+
+    rows = read_calibrations(args.sheet)
+    if args.calibration not in rows:
+        raise RingidError(args.sheet, f"no calibration {args.calibration!r} in the sheet")
+    rec = make_calibration(rows[args.calibration], args.output, library_dir=args.library)
+    if rec["status"] == "ok":
+        print(f"{args.calibration}: K = {rec['camera_constant_A_px']:.4f} Å·px ({rec['kind']})", file=sys.stderr)
+    else:
+        print(f"ringid: warning: calibration {args.calibration}: {rec['error']} (recorded as failed)", file=sys.stderr)
+    return 0

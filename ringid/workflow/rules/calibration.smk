@@ -1,0 +1,24 @@
+# INPUTS: calibration sheet row (+ standard film image and the standard's ring list)
+# OUTPUTS: calibrations/{calibration}.json (status ok or failed with its reason)
+
+
+rule calibration:
+    input:
+        unpack(calibration_inputs),
+        sheet=config["calibrations"],
+    output:
+        f"{RESULTS}/calibrations/{{calibration}}.json",
+    log:
+        f"{RESULTS}/logs/calibrations/{{calibration}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/calibrations/{{calibration}}.tsv"
+    threads: 1
+    resources:
+        mem_mb=mem("image"),
+        runtime=runtime("image"),
+    shell:
+        "ringid calibration {wildcards.calibration:q}"
+        " --sheet {input.sheet:q}"
+        " --library {LIB:q}"
+        " -o {output:q}"
+        " > {log:q} 2>&1"

@@ -1,0 +1,75 @@
+# Reads and checks the sheets once, before any job starts (every problem at once), and
+# holds the input functions. Nothing else here touches the data.
+
+import os
+import sys
+from pathlib import Path
+
+from ringid.sheets import SheetError, read_sheets
+
+RESULTS = config["results_dir"].rstrip("/")
+LIB = f"{RESULTS}/library"
+PHASES_DIR = config["phases_dir"]
+
+if not Path(PHASES_DIR).is_dir():
+    sys.exit(f"ringid: error: {PHASES_DIR}: phases_dir is not a folder")
+if not Path(config["samples"]).exists() and config["samples"] == "demo/samples.csv":
+    sys.exit("ringid: error: demo/samples.csv: the demo data are not there yet; run `ringid demo` first")
+try:
+    SAMPLES, CALIBRATIONS = read_sheets(config["samples"], config["calibrations"], PHASES_DIR)
+except SheetError as exc:
+    sys.exit("\n".join(f"ringid: error: {line}" for line in exc.lines))
+
+PHASES = sorted(p.stem for p in Path(PHASES_DIR).glob("*.cif"))
+if not PHASES:
+    sys.exit(f"ringid: error: {PHASES_DIR}: no *.cif files")
+
+
+wildcard_constraints:
+    sample=r"[A-Za-z0-9][A-Za-z0-9._-]*",
+    calibration=r"[A-Za-z0-9][A-Za-z0-9._-]*",
+    phase=r"[^/]+",
+
+
+def cal_kind(calibration):
+    return CALIBRATIONS[calibration].kind
+
+
+def dilation_window(calibration):
+    key = "dilation_window_nominal" if cal_kind(calibration) == "nominal" else "dilation_window_standard"
+    return config.get("identify", {}).get(key, 0.03 if key.endswith("nominal") else 0.005)
+
+
+def sample_image(wildcards):
+    return SAMPLES[wildcards.sample].image
+
+
+def sample_calibration(wildcards):
+    return f"{RESULTS}/calibrations/{SAMPLES[wildcards.sample].calibration}.json"
+
+
+def calibration_inputs(wildcards):
+    row = CALIBRATIONS[wildcards.calibration]
+    if row.kind == "standard":
+        return {"image": row.image, "rings": f"{LIB}/rings/{row.standard}.csv"}
+    return {}
+
+
+def mem(kind):
+    return config.get("resources", {}).get(f"{kind}_mem_mb", 1500 if kind == "image" else 500)
+
+
+def runtime(kind):
+    return config.get("resources", {}).get(f"{kind}_runtime_min", 10 if kind == "image" else 5)
+
+
+def image_options():
+    import shlex
+
+    opts = config.get("image", {})
+    out = []
+    if opts.get("saturation_level") is not None:
+        out.append(f"--saturation-level {float(opts['saturation_level'])}")
+    if opts.get("user_mask"):
+        out.append(f"--mask {shlex.quote(str(opts['user_mask']))}")
+    return " ".join(out)

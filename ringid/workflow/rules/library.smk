@@ -1,0 +1,45 @@
+# INPUTS: phases_dir/{phase}.cif   OUTPUTS: library/{phases,rings,reflections}/{phase}.*, library/index.csv
+# One job per CIF, so a new or changed CIF recomputes only its phase.
+
+
+rule library_phase:
+    input:
+        cif=f"{PHASES_DIR}/{{phase}}.cif",
+    output:
+        record=f"{LIB}/phases/{{phase}}.json",
+        rings=f"{LIB}/rings/{{phase}}.csv",
+        reflections=f"{LIB}/reflections/{{phase}}.csv",
+    log:
+        f"{RESULTS}/logs/library/{{phase}}.log",
+    params:
+        d_min=config.get("library", {}).get("d_min_angstrom", 0.5),
+        tol=config.get("library", {}).get("merge_tolerance", 1e-4),
+    threads: 1
+    resources:
+        mem_mb=mem("cheap"),
+        runtime=runtime("cheap"),
+    shell:
+        "ringid library phase {input.cif:q}"
+        " -o {LIB:q}"
+        " --d-min-angstrom {params.d_min}"
+        " --merge-tolerance {params.tol}"
+        " > {log:q} 2>&1"
+
+
+rule library_index:
+    input:
+        expand(f"{LIB}/phases/{{phase}}.json", phase=PHASES),
+    output:
+        f"{LIB}/index.csv",
+    log:
+        f"{RESULTS}/logs/library/index.log",
+    params:
+        phases=PHASES,
+    threads: 1
+    resources:
+        mem_mb=mem("cheap"),
+        runtime=runtime("cheap"),
+    shell:
+        "ringid library index {LIB:q}"
+        " --phases {params.phases:q}"
+        " > {log:q} 2>&1"
