@@ -1,37 +1,47 @@
 """Rings of a 1D profile: significance-tested detection and joint pseudo-Voigt fitting.
 
-Detection (:func:`detect_rings`) is a multi-scale matched filter run as a matching pursuit on the
-background-subtracted profile. At each scale s (Gaussian σ in bins, from the instrumental width
-to the widest halo, steps of √2) the statistic
+Detection (:func:`detect_rings`) is a multi-scale matched filter on the background-subtracted
+profile r. At each scale s (Gaussian σ of a ring, in bins, from half the instrumental FWHM to
+the widest halo, steps of √2) the statistic
 
     T_s(i) = Σ_j k_s(j) r(i+j) / σ²(i+j)  /  √( Σ_j k_s(j)² / σ²(i+j) )
 
 is the signal-to-noise ratio of the compensated (zero-mean) kernel
-k(x) = exp(−x²/2c²) − ½ exp(−x²/8c²), c = 1.6534 s (a difference of Gaussians, blind to a
-constant or linear background error, matched to a Gaussian ring of standard deviation s). For pure noise with the stated σ, T_s(i) is standard normal. The
-detection threshold z follows from the false-alarm probability α per profile with a Bonferroni
-(look-elsewhere) correction over the M independent resolution elements searched,
-M = Σ_scales (g range / FWHM_scale):  z = Φ⁻¹(1 − α/M). The largest T above z is taken, its
-Gaussian is subtracted, and the search repeats, so close rings are separated down to the
-smallest scale (the instrumental FWHM) and a weak ring on the flank of a strong one is found
-after the strong one is removed.
+k(x) = exp(−x²/2c²) − ½ exp(−x²/8c²), c = 1.6534 s: a difference of Gaussians, blind to a
+constant or linear background error, and matched to a Gaussian ring of standard deviation s.
+For pure noise with the stated σ, T_s(i) is standard normal. The threshold z follows from the
+false-alarm probability α per profile with a Bonferroni (look-elsewhere) correction over the M
+independent resolution elements searched, M = Σ_scales (g range / FWHM_scale):
+z = Φ⁻¹(1 − α/M) (z ≈ 4.4 for α = 0.01 on a 1–14 nm⁻¹ profile). Local maxima above z are
+taken from the finest scale up, so close rings are separated at the smallest width that
+resolves them (measured: two equal rings 1.0 FWHM apart are resolved).
 
-Fitting (:func:`fit_rings`) is one joint bounded least-squares problem (scipy
-``least_squares``, trust-region reflective, analytic Jacobian) of all components, each a
-normalised pseudo-Voigt A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, on top of
-the background. Uncertainties are the square roots of the diagonal of (JᵀJ)⁻¹·χ²_ν, the
-covariance scaled by the reduced χ². After a fit the residual is searched again at the same
-threshold (components missed the first time are added), and components whose fitted area is
-not significant (A/σ_A below ``confirm_sigma``) are dropped before a refit.
+Fitting (:func:`fit_rings`) is a joint bounded least-squares problem (scipy ``least_squares``,
+trust-region reflective, analytic Jacobian) of all components, each a normalised pseudo-Voigt
+A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, on the background plus a smooth
+additive correction (linear B-splines, knots ≥ 4 nm⁻¹ apart) fitted with them. Uncertainties
+are the square roots of the diagonal of (JᵀJ)⁻¹·χ²_ν: the covariance scaled by the reduced χ².
+The search runs in two stages:
+
+A. the narrow candidates alone are fitted; the background is clipped again from the profile
+   with these rings taken out (twice), so the piled-up tails of close rings are not taken for
+   background (or, worse, for a halo);
+B. broad components (halos) and anything missed are searched on the residual, and the joint
+   fit is repeated: the least significant component is dropped while its A/σ_A <
+   ``confirm_sigma`` (one at a time, since components sharing a feature are each
+   insignificant), and the residual is searched again at the same threshold. A residual
+   detection is not added when it is not resolved from a component already there, is weaker
+   than ``shape_tolerance`` of a neighbour (shape misfit), or repeats a dropped one.
 
 :func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,
-crystallinity and (with a cake) ring character.
+crystallinity and (with a cake) ring character, returning a :class:`RingAnalysis`;
+:func:`write_rings_csv` and :func:`write_profile_csv` write the contract files.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -498,15 +508,41 @@ def fit_rings(
     -------
     :class:`RingFit`, rings sorted by g.
     """
+    settings = dict(
+        instrument=instrument,
+        false_alarm_probability=false_alarm_probability,
+        halo_min_fwhm_per_nm=halo_min_fwhm_per_nm,
+        fwhm_max_per_nm=fwhm_max_per_nm,
+        confirm_sigma=confirm_sigma,
+        max_rounds=max_rounds,
+        max_components=max_components,
+        correction_spacing_per_nm=correction_spacing_per_nm,
+        max_new_per_round=max_new_per_round,
+        background_iterations=background_iterations,
+        cleaned_smooth_per_nm=cleaned_smooth_per_nm,
+        shape_tolerance=shape_tolerance,
+    )
     with _one_blas_thread():
-        return _fit_rings(profile, background, instrument, false_alarm_probability, halo_min_fwhm_per_nm,
-                          fwhm_max_per_nm, confirm_sigma, max_rounds, max_components, correction_spacing_per_nm,
-                          max_new_per_round, background_iterations, cleaned_smooth_per_nm, shape_tolerance)
+        return _fit_rings(profile, background, **settings)
 
 
-def _fit_rings(profile, background, instrument, false_alarm_probability, halo_min_fwhm_per_nm, fwhm_max_per_nm,
-               confirm_sigma, max_rounds, max_components, correction_spacing_per_nm, max_new_per_round,
-               background_iterations, cleaned_smooth_per_nm, shape_tolerance):
+def _fit_rings(
+    profile,
+    background,
+    *,
+    instrument,
+    false_alarm_probability,
+    halo_min_fwhm_per_nm,
+    fwhm_max_per_nm,
+    confirm_sigma,
+    max_rounds,
+    max_components,
+    correction_spacing_per_nm,
+    max_new_per_round,
+    background_iterations,
+    cleaned_smooth_per_nm,
+    shape_tolerance,
+):
     from .background import DEFAULT_WINDOW_PER_NM, estimate_background, valid_mask
 
     g = np.asarray(profile.g_per_nm, dtype=float)
