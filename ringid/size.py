@@ -160,7 +160,7 @@ def ring_size(
     e_ins = float(instrument.eta)
     beta_s = float(sample_breadth(fwhm, eta, f_ins, e_ins))
     hi = float(sample_breadth(fwhm * (1.0 + rel), eta, f_ins, e_ins))
-    lo = float(sample_breadth(fwhm * max(1.0 - rel, 0.0), eta, f_ins, e_ins))
+    lo = float(sample_breadth(fwhm * max(1.0 - rel, 1e-3), eta, f_ins, e_ins))
     sigma = 0.5 * (hi - lo)
     if beta_s <= limit_sigma * sigma or beta_s <= 0.0:
         upper = beta_s + limit_sigma * max(sigma, 0.0)
