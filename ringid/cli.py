@@ -27,6 +27,7 @@ COMMANDS = [
     ("measure", "image job of one sample: pattern -> profile -> rings"),
     ("identify", "score a sample's rings against the phase library"),
     ("report", "summary.csv and report.html of a results folder"),
+    ("analyze", "one pattern through every stage in one process (no workflow)"),
 ]
 
 

@@ -31,7 +31,10 @@ def make_thumbnail(image: np.ndarray, mask: np.ndarray | None = None, size_px: i
     data = np.asarray(image[: my * b, : mx * b], dtype=np.float32)
     if mask is not None:
         data = np.where(mask[: my * b, : mx * b], np.nan, data)
-    with np.errstate(invalid="ignore"):
+    import warnings
+
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-masked blocks are NaN, as intended
         blocks = np.nanmean(data.reshape(my, b, mx, b), axis=(1, 3))
     finite = np.isfinite(blocks)
     if not finite.any():

@@ -653,7 +653,12 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
         for r, c in enumerate(result.candidates)
     ))
     # rings.csv: every input row (halos too) with its assignment; sharp rings in input order
-    header = list(rows[0].keys()) if rows else ["g_per_nm", "g_sigma_per_nm", "fwhm_per_nm", "area", "kind"]
+    if rows:
+        header = list(rows[0].keys())
+    else:
+        from .rings import RINGS_CSV_COLUMNS
+
+        header = list(RINGS_CSV_COLUMNS)
     header = [h for h in header if h not in ASSIGNMENT_COLUMNS] + ASSIGNMENT_COLUMNS
     row_of = obs.row_index if obs.row_index is not None else np.arange(len(obs))
     by_row = {int(r): a for r, a in zip(row_of, result.assignments)}
