@@ -249,6 +249,7 @@ class ImageResult:
     notes: tuple[str, ...] = ()
     warnings: tuple[str, ...] = ()
     timings_s: dict = field(default_factory=dict)
+    data: np.ndarray | None = None  # the loaded pattern (for thumbnails; not copied)
 
 
 def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: int | None = None,
@@ -331,4 +332,4 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
                                 with_cake=with_cake)
     t["integrate"] = time.perf_counter() - t0
     return ImageResult(geometry=geometry, profile=profile, fit=fit, mask=masks, path=str(path), flags=tuple(flags),
-                       notes=tuple(notes), warnings=tuple(img.warnings), timings_s=t)
+                       notes=tuple(notes), warnings=tuple(img.warnings), timings_s=t, data=img.data)

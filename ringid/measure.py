@@ -102,7 +102,7 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
         t_rings = time.perf_counter() - t0
         write_rings_csv(out / "measured_rings.csv", analysis)
         write_profile_csv(out / "profile.csv", res.profile, analysis)
-        thumb, bin_px = make_thumbnail(np.asarray(_load_for_thumbnail(image, res)), res.mask.mask)
+        thumb, bin_px = make_thumbnail(res.data, res.mask.mask)
         with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
             np.save(tmp, thumb)
         g = res.geometry
@@ -144,12 +144,6 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
     record["timings_s"]["total"] = round(time.perf_counter() - t_start, 4)
     write_json(out / "sample.json", record)  # written last: its presence means the job finished
     return record
-
-
-def _load_for_thumbnail(image, res):
-    from .image import load_image
-
-    return load_image(image).data
 
 
 def _write_empty_table(path: Path) -> None:
