@@ -1,0 +1,54 @@
+"""Summary table and HTML report from a results folder."""
+
+import csv
+import json
+
+from ringid.report import SUMMARY_COLUMNS, write_report
+
+
+def make_results(tmp_path):
+    res = tmp_path / "results"
+    good = res / "samples" / "s1"
+    good.mkdir(parents=True)
+    (good / "sample.json").write_text(json.dumps({
+        "status": "ok", "crystallinity": "crystalline", "n_rings": 6, "calibration": "c1",
+        "note": '<script>alert("note")</script>', "geometry": {"center_x_px": 10.25, "center_y_px": 11.5, "ellipticity": 0.012},
+        "crystallite_size_nm": 12.34, "flags": ["textured"]}))
+    (good / "identification.json").write_text(json.dumps({
+        "phases": ["Au"], "confidence": [0.61], "alternatives": [["Ag"]], "unexplained_rings": 1,
+        "fractions_rough": [1.0], "flags": ["ambiguous_isostructural"], "unexplained": [{"d_angstrom": 3.1}]}))
+    (good / "rings.csv").write_text("g_per_nm,d_angstrom,kind,phase,hkl\n4.247,2.3546,ring,Au,1 1 1\n")
+    bad = res / "samples" / "s2"
+    bad.mkdir(parents=True)
+    (bad / "sample.json").write_text(json.dumps({"status": "failed", "error": "img.tif: not an image", "crystallinity": "no_signal"}))
+    (res / "samples" / "s3").mkdir(parents=True)  # the image job never finished
+    (res / "library").mkdir()
+    (res / "library" / "index.csv").write_text("phase,formula,space_group,a,b,c,alpha,beta,gamma,n_rings,cif_sha256,status,error,title\n"
+                                               'X,Au,F m -3 m,4,4,4,90,90,90,5,abc,ok,,"<script>t</script> & ""q"""\n')
+    (res / "calibrations").mkdir()
+    (res / "calibrations" / "c1.json").write_text(json.dumps({"status": "ok", "camera_constant_A_px": 1003.2, "kind": "standard"}))
+    return res
+
+
+def test_summary_rows_and_failures(tmp_path):
+    res = make_results(tmp_path)
+    write_report(res, ["s1", "s2", "s3"], ["c1"])
+    with open(res / "summary.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert list(rows[0]) == SUMMARY_COLUMNS
+    s1, s2, s3 = rows
+    assert (s1["status"], s1["phases"], s1["alternatives"], s1["confidence"]) == ("ok", "Au", "Ag", "0.610")
+    assert s1["flags"] == "textured;ambiguous_isostructural" and s1["unexplained_rings"] == "1"
+    assert s1["center_x_px"] == "10.250" and s1["crystallite_size_nm"] == "12.3"
+    assert (s2["status"], s2["error"]) == ("failed", "img.tif: not an image")
+    assert s3["status"] == "failed" and "did not finish" in s3["error"]
+
+
+def test_report_escapes_untrusted_text(tmp_path):
+    res = make_results(tmp_path)
+    page = write_report(res, ["s1", "s2", "s3"], ["c1"], title="run <b>1</b>").read_text()
+    assert "<script>alert" not in page and "&lt;script&gt;alert(&quot;note&quot;)&lt;/script&gt;" in page
+    assert "&lt;script&gt;t&lt;/script&gt; &amp; &quot;q&quot;" in page
+    assert "<title>run &lt;b&gt;1&lt;/b&gt;</title>" in page
+    assert page.count("<script>") == 1  # only the page's own sorting/filtering script
+    assert "screening result" in page.lower()
