@@ -22,8 +22,12 @@ SUMMARY_CONTRACT = ["sample", "status", "crystallinity", "phases", "alternatives
 
 
 def snakemake(*args, cwd=ROOT, check=True, timeout=900):
+    """Run Snakemake with this interpreter; its rules find `ringid` beside it on PATH."""
+    import os
+
+    env = dict(os.environ, PATH=os.path.dirname(sys.executable) + os.pathsep + os.environ.get("PATH", ""))
     cmd = [sys.executable, "-m", "snakemake", *args]
-    res = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=timeout)
+    res = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=timeout, env=env)
     if check and res.returncode != 0:
         raise AssertionError(f"snakemake failed ({res.returncode}):\n{res.stdout[-3000:]}\n{res.stderr[-3000:]}")
     return res
