@@ -72,6 +72,8 @@ def load_image(path: str | os.PathLike, *, frame: int | None = None, max_pixels:
     path = Path(path)
     if not path.is_file():
         raise RingidError(path, "file not found")
+    if path.stat().st_size == 0:
+        raise RingidError(path, "empty file (0 bytes)")
     try:
         with open(path, "rb") as fh:
             head = fh.read(8)
