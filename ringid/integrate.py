@@ -300,6 +300,8 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     level = img.saturation_level if saturation_level is None else saturation_level
     masks = build_mask(img.data, invalid=img.invalid, saturation_level=level, user_mask=user)
     t["mask"] = time.perf_counter() - t0
+    if masks.mask.all():
+        raise RingidError(path, _nothing_usable(img, level))
     t0 = time.perf_counter()
     flags: list[str] = []
     notes = list(img.notes) + list(masks.notes)
@@ -315,8 +317,11 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
         flags += list(fit.flags)
         notes += list(fit.notes)
     except RingidError as exc:
-        if "ring" not in exc.problem:
-            raise
+        if not exc.problem.startswith("no ring found"):
+            # rings were seen but could not be followed round the centre: arcs of a pattern
+            # whose centre lies outside the image or near its edge (a symmetry centre would be wrong)
+            raise RingidError(path, f"the pattern centre could not be fitted ({exc.problem}); "
+                                    "is the centre outside the image or too close to its edge?") from None
         cc = coarse_center(img.data, masks.mask)
         fit = None
         g = Geometry(center_x_px=cc.center_x_px, center_y_px=cc.center_y_px, ellipticity=calibration.ellipticity,
@@ -333,3 +338,16 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     t["integrate"] = time.perf_counter() - t0
     return ImageResult(geometry=geometry, profile=profile, fit=fit, mask=masks, path=str(path), flags=tuple(flags),
                        notes=tuple(notes), warnings=tuple(img.warnings), timings_s=t, data=img.data)
+
+
+def _nothing_usable(img, saturation_level: float) -> str:
+    """Why every pixel of a loaded pattern is masked, in one line."""
+    import math
+
+    if img.invalid is not None and img.invalid.all():
+        return "every pixel is NaN or infinite: no usable data"
+    if not np.any(img.data):
+        return "every pixel is 0: no counts recorded"
+    if math.isfinite(saturation_level) and np.all(img.data >= saturation_level):
+        return f"every pixel is saturated (at or above {saturation_level:g} counts): nothing to measure"
+    return "every pixel is masked (invalid, saturated, dead, hot or user-masked): nothing to measure"
