@@ -63,11 +63,18 @@ def runtime(kind):
     return config.get("resources", {}).get(f"{kind}_runtime_min", 10 if kind == "image" else 5)
 
 
-def image_options():
+def sample_options(sample):
+    """Optional per-sample arguments of `ringid measure`, shell-quoted (notes are free text)."""
+    import math
     import shlex
 
+    row = SAMPLES[sample]
     opts = config.get("image", {})
-    out = []
+    out = [f"--calibration-id {shlex.quote(row.calibration)}"]
+    if row.note:
+        out.append(f"--note {shlex.quote(row.note)}")
+    if math.isfinite(row.voltage_kv):
+        out.append(f"--voltage-kv {row.voltage_kv:g}")
     if opts.get("saturation_level") is not None:
         out.append(f"--saturation-level {float(opts['saturation_level'])}")
     if opts.get("user_mask"):

@@ -18,11 +18,8 @@ rule measure:
         f"{RESULTS}/benchmarks/samples/{{sample}}.tsv"
     params:
         outdir=lambda wc: f"{RESULTS}/samples/{wc.sample}",
-        calibration_id=lambda wc: SAMPLES[wc.sample].calibration,
-        note=lambda wc: SAMPLES[wc.sample].note,
-        voltage=lambda wc: SAMPLES[wc.sample].voltage_kv,
         max_pixels=config.get("image", {}).get("max_pixels", 67108864),
-        extra=lambda wc: image_options(),
+        extra=lambda wc: sample_options(wc.sample),
     threads: 1
     resources:
         mem_mb=mem("image"),
@@ -32,9 +29,6 @@ rule measure:
         " --calibration {input.calibration:q}"
         " -o {params.outdir:q}"
         " --sample {wildcards.sample:q}"
-        " --calibration-id {params.calibration_id:q}"
-        " --note {params.note:q}"
-        " --voltage-kv {params.voltage}"
         " --max-pixels {params.max_pixels}"
         " {params.extra}"
         " > {log:q} 2>&1"
