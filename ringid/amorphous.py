@@ -47,13 +47,12 @@ def electron_scattering_factor_angstrom(element: str, g_per_nm, b_iso_angstrom2:
     """
     import gemmi
 
-    el = gemmi.Element(element)
-    if el.atomic_number == 0 and element.strip().lower() not in ("x",):
+    from .library import electron_scattering_factors
+
+    if gemmi.Element(element).atomic_number == 0 and element.strip().lower() not in ("x",):
         raise ValueError(f"unknown element symbol {element!r}")
-    coefs = np.asarray(el.c4322.get_coefs(), dtype=float)
-    a, b = coefs[:5], coefs[5:]
     s2 = (np.asarray(g_per_nm, dtype=float) / 20.0) ** 2  # s = g/2, g in 1/Å = g_per_nm/10
-    f = np.exp(-np.multiply.outer(s2, b)) @ a
+    f = electron_scattering_factors([element], np.atleast_1d(s2).ravel())[:, 0].reshape(np.shape(s2))
     if b_iso_angstrom2:
         f = f * np.exp(-b_iso_angstrom2 * s2)
     return f
