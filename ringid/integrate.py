@@ -317,11 +317,8 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
         flags += list(fit.flags)
         notes += list(fit.notes)
     except RingidError as exc:
-        if not exc.problem.startswith("no ring found"):
-            # rings were seen but could not be followed round the centre: arcs of a pattern
-            # whose centre lies outside the image or near its edge (a symmetry centre would be wrong)
-            raise RingidError(path, f"the pattern centre could not be fitted ({exc.problem}); "
-                                    "is the centre outside the image or too close to its edge?") from None
+        if "ring" not in exc.problem:
+            raise
         cc = coarse_center(img.data, masks.mask)
         fit = None
         g = Geometry(center_x_px=cc.center_x_px, center_y_px=cc.center_y_px, ellipticity=calibration.ellipticity,
