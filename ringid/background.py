@@ -105,8 +105,11 @@ def estimate_background(
     gain = float(np.median(y[pos] / s[pos] ** 2)) if pos.any() else 1.0
     counts = yf * gain
     smooth_bins = 3 if smooth_per_nm is None else max(1, int(round(smooth_per_nm / step)))
+    # smoothing on the LLS scale, where the steep tail near the central beam is nearly straight
+    # (a moving average of the counts there would lift the background on the convex tail)
+    values = lls(counts)
     if smooth_bins > 1:
-        counts = _moving_average_linear_ends(counts, smooth_bins)
+        values = _moving_average_linear_ends(values, smooth_bins)
     window_bins = max(1, int(round(window_per_nm / step)))
-    background_counts = lls_inverse(snip(lls(counts), window_bins))
+    background_counts = lls_inverse(snip(values, window_bins))
     return np.clip(background_counts, 0.0, None) / gain

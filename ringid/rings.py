@@ -55,7 +55,14 @@ FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * LN2)
 # The kernel k_s(x) = exp(−x²/2s²) − ½exp(−x²/8s²) gives the largest SNR on a Gaussian peak of
 # standard deviation σ when s = 1.6534 σ (computed numerically by maximising ⟨k_s, G_σ⟩/‖k_s‖).
 DOG_MATCH = 1.6534
-LSMR_ABOVE_PARAMETERS = 10**6  # LSMR measured slower here even for 30 rings; kept as a switch
+LSMR_ABOVE_PARAMETERS = 10**6
+# a detection must stand out of its surroundings by a dip of this many σ of the matched-filter
+# SNR (prominence); noise ripples on a strong feature are of order 1 σ (common practice: 3σ)
+PEAK_PROMINENCE_SIGMA = 3.0
+# scales are √2 apart: 4 steps = a factor 4 in width (a shoulder of a much broader feature)
+SHOULDER_SCALE_STEPS = 4
+# largest cluster of overlapping rings fitted as one problem (4 parameters each)
+CLUSTER_MAX_MEMBERS = 6  # LSMR measured slower here even for 30 rings; kept as a switch
 
 
 @dataclass(frozen=True)
@@ -249,7 +256,7 @@ def detect_rings(
     -------
     Candidates, strongest first (at most ``max_components``).
     """
-    from scipy.signal import argrelmax
+    from scipy.signal import argrelmax, find_peaks
 
     g = np.asarray(g_per_nm, dtype=float)
     step = float(np.median(np.diff(g)))
@@ -259,29 +266,45 @@ def detect_rings(
     r = np.where(ok, residual, 0.0).astype(float)
     scales = _scales_bins(step, fwhm_min_per_nm, fwhm_max_per_nm)
     snr, amp = _MatchedFilter(weight, scales).snr_and_amplitude(r * weight)
-    finite_snr = np.where(np.isfinite(snr), snr, -1e300)
+    finite = np.isfinite(snr)
+    floor = float(np.min(snr[finite])) if finite.any() else 0.0
+    finite_snr = np.where(finite, snr, floor)
+    # every local maximum, for following a feature through the scales
     maxima = [argrelmax(finite_snr[k], order=1, mode="clip")[0] for k in range(len(scales))]
+    # starting points: maxima above the threshold that stand out from their surroundings by a
+    # significant dip (prominence ≥ PEAK_PROMINENCE_SIGMA in SNR units; T_s has unit noise), so
+    # the noise ripples on top of a strong ring or a halo are not taken for separate rings
+    starts = [
+        find_peaks(finite_snr[k], height=threshold_sigma, prominence=PEAK_PROMINENCE_SIGMA)[0]
+        for k in range(len(scales))
+    ]
     taken: list[int] = []  # positions (bins) of accepted candidates
+    ends: list[tuple[int, int]] = []  # (scale index, bin) where each accepted candidate ended
     found: list[Candidate] = []
-    for k, idx in enumerate(maxima):
+    for k, idx in enumerate(starts):
         half = 0.5 * FWHM_PER_SIGMA * scales[k]
         for i in idx[np.argsort(-snr[k, idx])]:
-            if not snr[k, i] > threshold_sigma:
-                break
             if any(abs(i - t) < half for t in taken):
                 continue
             # follow the maximum up through the scales while its SNR grows
             kk, ii = k, i
             while kk + 1 < len(scales):
                 nxt = maxima[kk + 1]
-                near = nxt[np.abs(nxt - ii) <= max(1.0, 0.5 * FWHM_PER_SIGMA * scales[kk])]
+                near = nxt[np.abs(nxt - ii) <= max(1.0, 0.5 * FWHM_PER_SIGMA * scales[kk + 1])]
                 if near.size == 0:
                     break
                 j = near[np.argmax(snr[kk + 1, near])]
                 if snr[kk + 1, j] <= snr[kk, ii]:
                     break
                 kk, ii = kk + 1, j
+            # a fine maximum that grows into a feature at least 3× broader, where another
+            # accepted one already ended, is a shoulder of that broad feature, not a new ring
+            if kk - k >= SHOULDER_SCALE_STEPS and any(
+                ke == kk and abs(ie - ii) < 0.5 * FWHM_PER_SIGMA * scales[kk] for ke, ie in ends
+            ):
+                continue
             taken.append(i)
+            ends.append((kk, ii))
             s = scales[kk]
             found.append(
                 Candidate(
@@ -327,7 +350,7 @@ class _Fit:
     converged: bool = True
 
 
-def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis):
+def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis, max_nfev=200):
     """Joint bounded least squares of pseudo-Voigt components plus a smooth background correction."""
     from scipy.optimize import least_squares
 
@@ -365,7 +388,7 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis)
     # the iterative LSMR solver is cheaper (the covariance below still uses the full SVD)
     solver = "exact" if x0.size <= LSMR_ABOVE_PARAMETERS else "lsmr"
     res = least_squares(
-        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=200, ftol=1e-5, xtol=1e-5,
+        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=max_nfev, ftol=1e-5, xtol=1e-5,
         tr_solver=solver,
     )
     p = res.x
@@ -420,7 +443,9 @@ def _near_rejected(new: Candidate, rejected: list[Candidate]) -> bool:
     return False
 
 
-def _weakest_dropped(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g_range=(-np.inf, np.inf)) -> np.ndarray:
+def _weakest_dropped(
+    fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g_range=(-np.inf, np.inf), fwhm_ceiling: float = np.inf
+) -> np.ndarray:
     """Keep-mask that drops only the least significant component, if it is below confirm_sigma.
 
     One at a time: components that share one feature are each insignificant while together
@@ -430,6 +455,9 @@ def _weakest_dropped(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g
     area_sigma = np.sqrt(np.clip(np.diag(fit.cov)[3::4], 0.0, None))
     z = fit.params[:, 3] / np.where(area_sigma > 0, area_sigma, np.inf)
     z = np.where(fit.params[:, 1] <= 1.02 * fwhm_floor, 0.0, z)
+    # a narrow-stage component pressed against its widest allowed width is part of a broader
+    # feature (a halo), left to the broad stage
+    z = np.where(fit.params[:, 1] >= 0.98 * fwhm_ceiling, 0.0, z)
     # a component reaching past the end of the data by more than its HWHM cannot be told from
     # the background tail there
     g0, half = fit.params[:, 0], 0.5 * fit.params[:, 1]
@@ -526,6 +554,68 @@ def fit_rings(
         return _fit_rings(profile, background, **settings)
 
 
+class _Component:
+    """Mutable working state of one fitted component during the search (internal)."""
+
+    __slots__ = ("params", "cov", "snr")
+
+    def __init__(self, params, cov, snr):
+        self.params = np.asarray(params, dtype=float)
+        self.cov = cov
+        self.snr = snr
+
+    def candidate(self) -> Candidate:
+        g0, fwhm, eta, area = map(float, self.params)
+        return Candidate(g0, fwhm, self.snr, area, eta)
+
+
+def _curve(g, comps):
+    """Sum of the components' pseudo-Voigts on the grid g."""
+    out = np.zeros_like(g)
+    for c in comps:
+        out += pseudo_voigt(g, c.params[0], c.params[1], c.params[2], c.params[3])
+    return out
+
+
+def _clusters(comps, reach, max_members=CLUSTER_MAX_MEMBERS):
+    """Groups of components whose ±reach·FWHM windows overlap (index lists, sorted by g).
+
+    A group larger than ``max_members`` (a dense run of rings chained by their overlaps) is
+    split at its widest gap relative to the widths either side, until every group is small;
+    the neighbours across a cut are held fixed in each other's fits, and the clusters are
+    fitted in turn (block coordinate descent), so the cut costs nothing in the solution.
+    """
+    if not comps:
+        return []
+    order = sorted(range(len(comps)), key=lambda k: comps[k].params[0])
+    groups, hi = [[order[0]]], comps[order[0]].params[0] + reach * comps[order[0]].params[1]
+    for k in order[1:]:
+        g0, w = comps[k].params[0], comps[k].params[1]
+        if g0 - reach * w <= hi:
+            groups[-1].append(k)
+            hi = max(hi, g0 + reach * w)
+        else:
+            groups.append([k])
+            hi = g0 + reach * w
+    out = []
+    while groups:
+        grp = groups.pop()
+        if len(grp) <= max_members:
+            out.append(grp)
+            continue
+        p = np.array([comps[k].params[:2] for k in grp])
+        gap = np.diff(p[:, 0]) / (p[:-1, 1] + p[1:, 1])
+        cut = int(np.argmax(gap)) + 1
+        groups += [grp[:cut], grp[cut:]]
+    return sorted(out, key=lambda grp: comps[grp[0]].params[0])
+
+
+def _linear_basis(gw):
+    """Local linear background correction on a window: rows 1 and (g − g_mid)/half-width."""
+    mid, half = 0.5 * (gw[0] + gw[-1]), max(0.5 * (gw[-1] - gw[0]), 1e-12)
+    return np.vstack([np.ones_like(gw), (gw - mid) / half])
+
+
 def _fit_rings(
     profile,
     background,
@@ -542,6 +632,9 @@ def _fit_rings(
     background_iterations,
     cleaned_smooth_per_nm,
     shape_tolerance,
+    cluster_reach_fwhm=8.0,
+    cluster_link_fwhm=1.5,
+    cluster_max_nfev=200,
 ):
     from .background import DEFAULT_WINDOW_PER_NM, estimate_background, valid_mask
 
@@ -577,108 +670,193 @@ def _fit_rings(
 
     detect = dict(fwhm_min_per_nm=fwhm_min, fwhm_max_per_nm=fwhm_max, threshold_sigma=z)
     fwhm_lo, fwhm_hi = 0.7 * fwhm_narrowest, 1.5 * fwhm_max
-    basis = _hat_basis(g, max(correction_spacing_per_nm, 2.0 * fwhm_max))
-
-    def run(cands_, bg_, hi):
-        return _fit_components(g, y, sigma, ok, bg_, cands_, fwhm_lo, hi, basis)
-
-    def warm(fit_, cands_, keep_):
-        """Candidates carrying the fitted values, so that a refit starts from the last solution."""
-        return [
-            Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
-            for p, c, k in zip(fit_.params, cands_, keep_)
-            if k
-        ]
-
+    ring_hi = halo_min_fwhm_per_nm  # widest component of the ring (narrow) stage
     data_range = (float(g[ok].min()), float(g[ok].max()))
+    rejected: list[Candidate] = []
+    settled = True
+    converged = True
 
-    def prune(fit_, cands_, bg_, hi):
-        """Drop the least significant component and refit, until every one is significant."""
-        while fit_ is not None and fit_.converged:
-            keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range)
+    def fit_cluster(members, baseline):
+        """Fit one cluster of narrow components on its own window, the rest held fixed.
+
+        The window spans ±cluster_reach_fwhm FWHM around every member; the baseline there is
+        the clipped background, the halos and the tails of all other components, plus a local
+        linear correction fitted with the cluster. The least significant member is dropped and
+        the cluster refitted until all are significant. Returns the surviving components.
+        """
+        nonlocal converged
+        cands_ = [m.candidate() for m in members]
+        while cands_:
+            lo_g = min(c.g_per_nm - cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
+            hi_g = max(c.g_per_nm + cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
+            i0 = max(int(np.searchsorted(g, lo_g)), 0)
+            i1 = min(int(np.searchsorted(g, hi_g)) + 1, g.size)
+            win = slice(i0, i1)
+            okw = ok[win]
+            if okw.sum() < 4 * len(cands_) + 4:
+                rejected.extend(cands_)
+                return []
+            gw = g[win]
+            fit_ = _fit_components(
+                gw, y[win], sigma[win], okw, baseline[win], cands_, fwhm_lo, ring_hi, local_basis(gw),
+                max_nfev=cluster_max_nfev,
+            )
+            keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi)
             if keep_.all():
-                break
-            rejected.extend(warm(fit_, cands_, ~keep_))
-            cands_ = warm(fit_, cands_, keep_)
-            fit_ = run(cands_, bg_, hi) if cands_ else None
-        return fit_, cands_
+                converged = converged and fit_.converged
+                return [
+                    _Component(p, fit_.cov[4 * k : 4 * k + 4, 4 * k : 4 * k + 4], c.snr)
+                    for k, (p, c) in enumerate(zip(fit_.params, cands_))
+                ]
+            rejected.extend(c for c, k in zip(cands_, keep_) if not k)
+            cands_ = [
+                Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
+                for p, c, k in zip(fit_.params, cands_, keep_)
+                if k
+            ]
+        return []
 
-    def peel(cands_, bg_, hi):
-        """Fit; drop what is not significant; add what the residual still shows; repeat."""
-        fit_, cands_ = prune(run(cands_, bg_, hi), cands_, bg_, hi)
+    def local_basis(gw):
+        # a background given by the caller is taken as known: no local correction
+        return np.zeros((0, gw.size)) if background_given else _linear_basis(gw)
+
+    def refit(comps_, base, only=None):
+        """Refit the clusters of comps_ (all, or those holding an index in ``only``)."""
+        total = _curve(g, comps_)
+        out = []
+        for grp in _clusters(comps_, cluster_link_fwhm):
+            members = [comps_[k] for k in grp]
+            if only is not None and not any(k in only for k in grp):
+                out.extend(members)
+                continue
+            own = _curve(g, members)
+            out.extend(fit_cluster(members, base + (total - own)))
+        return out
+
+    def settle(comps_, base, max_sweeps=6, tolerance_sigma=0.1):
+        """Sweep over the clusters until no area or position moves by more than
+        ``tolerance_sigma`` of its uncertainty (neighbours' tails are held fixed in each
+        cluster's fit, so the sweeps make the solution consistent: block coordinate descent)."""
+        for _ in range(max_sweeps):
+            before = {(round(c.params[0], 9)): c.params.copy() for c in comps_}
+            comps_ = refit(comps_, base)
+            moved = 0.0
+            for c in comps_:
+                sd = np.sqrt(np.clip(np.diag(c.cov), 1e-300, None))[[0, 3]]
+                old = min(before.values(), key=lambda p: abs(p[0] - c.params[0]))
+                moved = max(moved, float(np.max(np.abs(c.params[[0, 3]] - old[[0, 3]]) / sd)))
+            if moved < tolerance_sigma or len(comps_) != len(before):
+                if moved < tolerance_sigma:
+                    break
+        return comps_
+
+    def from_candidates(cands_):
+        return [_Component([c.g_per_nm, c.fwhm_per_nm, c.eta, max(c.area, 1e-12)], None, c.snr) for c in cands_]
+
+    # Stage A: the narrow rings, cluster by cluster, on the clipped background
+    narrow = [
+        c
+        for c in detect_rings(g, y - background, sigma, max_components=max_components, **detect)
+        if c.fwhm_per_nm < ring_hi
+    ]
+    # two sweeps over the clusters: each is fitted with its neighbours' tails held fixed, so a
+    # second sweep makes the solution consistent across clusters (block coordinate descent)
+    comps = settle(from_candidates(narrow), background)
+
+    def residual_rounds(comps_, base):
+        nonlocal settled
         for _ in range(max_rounds):
-            if fit_ is None:
-                return None, [], True
-            kept_ = warm(fit_, cands_, np.ones(len(cands_), bool))
-            model_ = bg_ + fit_.correction + fit_.comps.sum(axis=0)
+            model_ = base + _curve(g, comps_)
+            have = [c.candidate() for c in comps_]
             extra_ = [
                 c
                 for c in detect_rings(g, y - model_, sigma, max_components=max_components, **detect)
-                if c.fwhm_per_nm < hi and _resolved_from(c, kept_, shape_tolerance) and not _near_rejected(c, rejected)
-            ][: max(0, min(max_new_per_round, max_components - len(kept_)))]
-            if not extra_ and fit_.converged:
-                return fit_, cands_, True
-            cands_ = kept_ + extra_
-            fit_, cands_ = prune(run(cands_, bg_, hi), cands_, bg_, hi)
-        return fit_, cands_, False
+                if c.fwhm_per_nm < ring_hi and _resolved_from(c, have, shape_tolerance) and not _near_rejected(c, rejected)
+            ][: max(0, min(max_new_per_round, max_components - len(comps_)))]
+            if not extra_:
+                return comps_
+            n_old = len(comps_)
+            comps_ = comps_ + from_candidates(extra_)
+            comps_ = refit(comps_, base, only=set(range(n_old, len(comps_))))
+        settled = False
+        return comps_
 
-    rejected: list[Candidate] = []
-    settled = True
-    # Stage A: the narrow rings alone. The tails of many close rings pile up into a broad
-    # pedestal that a clipped background cannot tell from a halo; so the rings are fitted
-    # first, and the background is clipped again from the profile with the fitted rings taken
-    # out (dips deeper than 2σ below the first background are misfits, not background, and are
-    # floored there).
-    cands = [
-        c
-        for c in detect_rings(g, y - background, sigma, max_components=max_components, **detect)
-        if c.fwhm_per_nm < halo_min_fwhm_per_nm
-    ]
-    fit = None
-    if cands:
-        first = run(cands, background, halo_min_fwhm_per_nm)
-        fit, cands = prune(first, cands, background, halo_min_fwhm_per_nm)
-        for _ in range(0 if background_given else background_iterations):
-            if fit is None or not fit.converged:
-                break
-            cleaned = np.maximum(y - fit.comps.sum(axis=0), background - 2.0 * np.where(ok, sigma, 0.0))
+    comps = residual_rounds(comps, background)
+    # The tails of many close rings pile up into a broad pedestal that a clipped background
+    # cannot tell from a halo: clip the background again from the profile with the fitted
+    # rings taken out (dips deeper than 2σ below the first background are misfits, not
+    # background, and are floored there), and refit.
+    if comps and not background_given:
+        for _ in range(background_iterations):
+            cleaned = np.maximum(y - _curve(g, comps), background - 2.0 * np.where(ok, sigma, 0.0))
             background = estimate_background(g, cleaned, sigma, smooth_per_nm=cleaned_smooth_per_nm)
-            fit = run(warm(fit, cands, np.ones(len(cands), bool)), background, halo_min_fwhm_per_nm)
-    # Stage B: everything, halos included, searched on the residual of stage A.
-    if fit is not None:
-        keep = _significant(fit, confirm_sigma, fwhm_lo) if fit.converged else np.ones(len(cands), bool)
-        cands = warm(fit, cands, keep)
-        rest = y - background - fit.correction - fit.comps[keep].sum(axis=0)
-    else:
-        cands, rest = [], y - background
-    extra = [
+            comps = settle(comps, background, max_sweeps=3)
+
+    # Stage B: broad components (halos) on the residual of the rings, fitted jointly over the
+    # whole profile with a smooth background correction, the rings held fixed; then the ring
+    # clusters are refitted on the background + halos.
+    rings_curve = _curve(g, comps)
+    have = [c.candidate() for c in comps]
+    broad = [
         c
-        for c in detect_rings(g, rest, sigma, max_components=max(1, max_components - len(cands)), **detect)
-        if _resolved_from(c, cands, shape_tolerance)
+        for c in detect_rings(g, y - background - rings_curve, sigma, max_components=max_components, **detect)
+        if c.fwhm_per_nm >= 0.5 * ring_hi and _resolved_from(c, have, shape_tolerance)
     ][:max_new_per_round]
-    cands = cands + extra
-    if not cands:
+    basis = _hat_basis(g, max(correction_spacing_per_nm, 2.0 * fwhm_max))
+    halos: list[_Component] = []
+    correction = np.zeros_like(g)
+    cands_b = broad
+    while cands_b:
+        fit_b = _fit_components(g, y, sigma, ok, background + rings_curve, cands_b, 0.5 * ring_hi, fwhm_hi, basis)
+        keep_b = _weakest_dropped(fit_b, confirm_sigma, 0.5 * ring_hi, data_range)
+        if keep_b.all():
+            converged = converged and fit_b.converged
+            halos = [
+                _Component(p, fit_b.cov[4 * k : 4 * k + 4, 4 * k : 4 * k + 4], c.snr)
+                for k, (p, c) in enumerate(zip(fit_b.params, cands_b))
+            ]
+            correction = fit_b.correction
+            break
+        cands_b = [
+            Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
+            for p, c, k in zip(fit_b.params, cands_b, keep_b)
+            if k
+        ]
+    if halos:
+        base = background + correction + _curve(g, halos)
+        comps = settle(comps, base, max_sweeps=3)
+        comps = residual_rounds(comps, base)
+    else:
+        base = background
+    # the smooth correction of the reported background (linear least squares on the hat basis)
+    if not halos and comps:
+        rest = y - background - _curve(g, comps)
+        w = np.where(ok, 1.0 / np.where(ok, sigma, 1.0), 0.0)
+        coef, *_ = np.linalg.lstsq((basis * w).T, np.where(ok, rest, 0.0) * w, rcond=None)
+        correction = coef @ basis
+    background = background + correction
+    everything = comps + halos
+    if not everything:
         return empty
-    fit, cands, settled_b = peel(cands, background, fwhm_hi)
-    if fit is None:
-        return empty
-    if not (settled and settled_b):
+    if not settled:
         flags.append("ring_search_not_converged")
-    if not fit.converged:
+    if not converged:
         flags.append("fit_not_converged")
-    params, cov, chi2_nu, comps = fit.params, fit.cov, fit.chi2_nu, fit.comps
-    background = background + fit.correction
+    comp_curve = _curve(g, everything)
+    model = background + comp_curve
+    n_par = 4 * len(everything)
+    chi2_nu = float(np.sum(((y - model)[ok] / sigma[ok]) ** 2) / max(int(ok.sum()) - n_par, 1))
 
     rings = []
-    for k, (p, c) in enumerate(zip(params, cands)):
-        g0, fwhm, eta, area = map(float, p)
-        var = np.diag(cov)[4 * k : 4 * k + 4]
-        sd = np.sqrt(np.clip(var, 0.0, None))
+    for comp in everything:
+        g0, fwhm, eta, area = map(float, comp.params)
+        cov = comp.cov if comp.cov is not None else np.full((4, 4), np.nan)
+        sd = np.sqrt(np.clip(np.diag(cov), 0.0, None))
         breadth = float(pseudo_voigt_integral_breadth(fwhm, eta))
         # σ_β from the (Γ, η) block of the covariance
         den = eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT
         grad = np.array([1.0 / den, -fwhm * (LORENTZ_HEIGHT - GAUSS_HEIGHT) / den**2])
-        block = cov[4 * k + 1 : 4 * k + 3, 4 * k + 1 : 4 * k + 3]
+        block = cov[1:3, 1:3]
         breadth_sigma = float(math.sqrt(max(grad @ block @ grad, 0.0)))
         rings.append(
             FittedRing(
@@ -690,7 +868,7 @@ def _fit_rings(
                 area=area,
                 area_sigma=float(sd[3]),
                 kind="halo" if fwhm >= halo_min_fwhm_per_nm else "ring",
-                significance=float(c.snr),
+                significance=float(comp.snr),
                 eta_sigma=float(sd[2]),
                 breadth_per_nm=breadth,
                 breadth_sigma_per_nm=breadth_sigma,
@@ -699,7 +877,6 @@ def _fit_rings(
         )
     order = np.argsort([r.g_per_nm for r in rings])
     rings = tuple(rings[i] for i in order)
-    model = background + comps.sum(axis=0)
     return RingFit(rings, background, model, chi2_nu, z, false_alarm_probability, n_res, tuple(flags))
 
 
