@@ -92,6 +92,8 @@ def ring_character(
 ) -> RingCharacter:
     """Character of one ring from the cake (see module docstring for the statistics)."""
     g = np.asarray(g_per_nm, dtype=float)
+    if not (math.isfinite(ring.g_per_nm) and ring.g_per_nm > 0 and math.isfinite(ring.fwhm_per_nm) and ring.fwhm_per_nm > 0):
+        return UNKNOWN
     cols = np.nonzero(np.abs(g - ring.g_per_nm) <= 0.5 * ring.fwhm_per_nm)[0]
     if cols.size == 0:
         cols = np.array([int(np.argmin(np.abs(g - ring.g_per_nm)))])
@@ -125,9 +127,12 @@ def ring_character(
     coef, *_ = np.linalg.lstsq(design, rel, rcond=None)
     resid = rel - design @ coef
     resid_var = float(np.sum(resid**2) / max(m - 4, 1))
+    independent = min(m, m_eff * m / n_az)
+    if not (math.isfinite(resid_var) and independent > 0):
+        return UNKNOWN
     # σ of one harmonic amplitude from the scatter; bins within one spot width are correlated,
     # so at most M_eff·coverage of them are independent
-    amp_sigma = math.sqrt(2.0 * resid_var / min(m, m_eff * m / n_az))
+    amp_sigma = math.sqrt(2.0 * resid_var / independent)
     amps = [math.hypot(coef[0], coef[1]), math.hypot(coef[2], coef[3])]
     best = int(np.argmax(amps))
     amp = amps[best]

@@ -279,7 +279,7 @@ def detect_rings(
         for k in range(len(scales))
     ]
     taken: list[int] = []  # positions (bins) of accepted candidates
-    ends: list[tuple[int, int]] = []  # (scale index, bin) where each accepted candidate ended
+    ends: list[tuple[int, int, int]] = []  # (start scale, end scale, end bin) of each accepted candidate
     found: list[Candidate] = []
     for k, idx in enumerate(starts):
         half = 0.5 * FWHM_PER_SIGMA * scales[k]
@@ -299,12 +299,13 @@ def detect_rings(
                 kk, ii = kk + 1, j
             # a fine maximum that grows into a feature at least 3× broader, where another
             # accepted one already ended, is a shoulder of that broad feature, not a new ring
-            if kk - k >= SHOULDER_SCALE_STEPS and any(
-                ke == kk and abs(ie - ii) < 0.5 * FWHM_PER_SIGMA * scales[kk] for ke, ie in ends
-            ):
+            # and a maximum starting at a coarser scale that ends where one resolved at a finer
+            # scale ended is the blend of resolved ones
+            same_end = [ks for ks, ke, ie in ends if ke == kk and abs(ie - ii) < 0.5 * FWHM_PER_SIGMA * scales[kk]]
+            if same_end and (kk - k >= SHOULDER_SCALE_STEPS or min(same_end) < k):
                 continue
             taken.append(i)
-            ends.append((kk, ii))
+            ends.append((k, kk, ii))
             s = scales[kk]
             found.append(
                 Candidate(
@@ -797,9 +798,12 @@ def _fit_rings(
     # clusters are refitted on the background + halos.
     rings_curve = _curve(g, comps)
     have = [c.candidate() for c in comps]
+    # searched at the broad scales only: ring misfits at fine scales would otherwise be taken
+    # first and hide a broad maximum under them
+    detect_broad = dict(detect, fwhm_min_per_nm=max(0.5 * ring_hi, fwhm_min))
     broad = [
         c
-        for c in detect_rings(g, y - background - rings_curve, sigma, max_components=max_components, **detect)
+        for c in detect_rings(g, y - background - rings_curve, sigma, max_components=max_components, **detect_broad)
         if c.fwhm_per_nm >= 0.5 * ring_hi and _resolved_from(c, have, shape_tolerance)
     ][:max_new_per_round]
     basis = _hat_basis(g, max(correction_spacing_per_nm, 2.0 * fwhm_max))
@@ -955,7 +959,13 @@ def analyze_profile(
         flags.add("instrument_width_unknown")
     if size.is_lower_limit:
         flags.add("size_is_lower_limit")
-    characters, character_flags = pattern_character(profile, fit.rings, fit.background, character_thresholds)
+    try:
+        characters, character_flags = pattern_character(profile, fit.rings, fit.background, character_thresholds)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+        # the ring character is an extra; a cake it cannot use is a flag, not a failed sample
+        from .character import UNKNOWN
+
+        characters, character_flags = tuple(UNKNOWN for _ in fit.rings), ("ring_character_failed",)
     flags.update(character_flags)
     return RingAnalysis(
         rings=fit.rings,

@@ -160,3 +160,31 @@ def test_writers(tmp_path):
     write_profile_csv(ppath, profile, analysis)
     prow = list(csv.DictReader(open(ppath)))
     assert len(prow) == G.size and set(prow[0]) == {"g_per_nm", "intensity", "sigma", "background", "model"}
+
+
+def test_realistic_size_profile_with_the_ceo2_rings():
+    """A profile of the size the image stage gives for 2048² (0.1–14.9 nm⁻¹ in 0.005 nm⁻¹ bins,
+    2960 bins, about π·100 g pixels per bin at K ≈ 1000 Å·px and ½ px per bin), with the
+    steep central-beam tail and every CeO2 ring in range: each ring is found once, at its
+    position within its uncertainty, and no extra ring is reported."""
+    from pyFAI.calibrant import get_calibrant
+
+    # source: pyFAI's calibrant table for CeO2 (d-spacings in Å), converted to g = 10/d
+    d = np.asarray(get_calibrant("CeO2").dspacing, dtype=float)
+    g = np.arange(0.1, 14.9, 0.005)
+    g_rings = np.sort(10.0 / d[(10.0 / d > 1.0) & (10.0 / d < 14.5)])
+    rng = np.random.default_rng(5)
+    fwhm = 0.06 + 0.002 * g_rings
+    area = 20.0 * (g_rings[0] / g_rings) ** 2 * rng.uniform(0.5, 1.5, g_rings.size)
+    tail = 3.0e3 * g**-1.5 + 30.0 * np.exp(-g / 4.0) + 4.0
+    expected = tail + sum(pseudo_voigt(g, g0, w, 0.5, a) for g0, w, a in zip(g_rings, fwhm, area))
+    profile = _poisson_profile(expected, rng, np.pi * 100.0 * g, g)
+    analysis = analyze_profile(profile, instrument=0.06)
+    rings = [r for r in analysis.rings if r.kind == "ring"]
+    found = np.array([r.g_per_nm for r in rings])
+    for g0 in g_rings:
+        match = [r for r in rings if abs(r.g_per_nm - g0) < 0.5 * 0.06]
+        assert len(match) == 1, (g0, found)
+        assert abs(match[0].g_per_nm - g0) < 5.0 * match[0].g_sigma_per_nm + 1e-4, (g0, match[0])
+    assert len(rings) == g_rings.size, found
+    assert analysis.crystallinity.label == "crystalline"
