@@ -558,12 +558,14 @@ def fit_rings(
 class _Component:
     """Mutable working state of one fitted component during the search (internal)."""
 
-    __slots__ = ("params", "cov", "snr")
+    __slots__ = ("params", "cov", "snr", "fit_window", "fit_baseline")
 
     def __init__(self, params, cov, snr):
         self.params = np.asarray(params, dtype=float)
         self.cov = cov
         self.snr = snr
+        self.fit_window = None  # (i0, i1) of the window of its last cluster fit
+        self.fit_baseline = None  # the baseline there at that fit
 
     def candidate(self) -> Candidate:
         g0, fwhm, eta, area = map(float, self.params)
@@ -688,10 +690,7 @@ def _fit_rings(
         nonlocal converged
         cands_ = [m.candidate() for m in members]
         while cands_:
-            lo_g = min(c.g_per_nm - cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
-            hi_g = max(c.g_per_nm + cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
-            i0 = max(int(np.searchsorted(g, lo_g)), 0)
-            i1 = min(int(np.searchsorted(g, hi_g)) + 1, g.size)
+            i0, i1 = window_of(cands_)
             win = slice(i0, i1)
             okw = ok[win]
             if okw.sum() < 4 * len(cands_) + 4:
@@ -705,10 +704,13 @@ def _fit_rings(
             keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi)
             if keep_.all():
                 converged = converged and fit_.converged
-                return [
+                out_ = [
                     _Component(p, fit_.cov[4 * k : 4 * k + 4, 4 * k : 4 * k + 4], c.snr)
                     for k, (p, c) in enumerate(zip(fit_.params, cands_))
                 ]
+                for c in out_:
+                    c.fit_window, c.fit_baseline = (i0, i1), baseline[win].copy()
+                return out_
             rejected.extend(c for c, k in zip(cands_, keep_) if not k)
             cands_ = [
                 Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
@@ -721,34 +723,45 @@ def _fit_rings(
         # a background given by the caller is taken as known: no local correction
         return np.zeros((0, gw.size)) if background_given else _linear_basis(gw)
 
-    def refit(comps_, base, only=None):
-        """Refit the clusters of comps_ (all, or those holding an index in ``only``)."""
+    def window_of(cands_):
+        lo_g = min(c.g_per_nm - cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
+        hi_g = max(c.g_per_nm + cluster_reach_fwhm * c.fwhm_per_nm for c in cands_)
+        return max(int(np.searchsorted(g, lo_g)), 0), min(int(np.searchsorted(g, hi_g)) + 1, g.size)
+
+    inv_sigma = np.where(ok, 1.0 / np.where(ok, sigma, 1.0), 0.0)
+
+    def refit(comps_, base, tolerance_sigma=0.1):
+        """One sweep over the clusters of comps_; returns (components, number of clusters fitted).
+
+        Each cluster is fitted with the others' tails held fixed in its baseline. A cluster
+        whose members were last fitted together on the same window, with a baseline that has
+        not changed there by ``tolerance_sigma`` of a bin's σ since, is left as it is.
+        """
         total = _curve(g, comps_)
-        out = []
+        out, n_fitted = [], 0
         for grp in _clusters(comps_, cluster_link_fwhm):
             members = [comps_[k] for k in grp]
-            if only is not None and not any(k in only for k in grp):
-                out.extend(members)
-                continue
-            own = _curve(g, members)
-            out.extend(fit_cluster(members, base + (total - own)))
-        return out
+            baseline = base + (total - _curve(g, members))
+            win = members[0].fit_window
+            if win is not None and all(m.fit_window == win for m in members):
+                i0, i1 = win
+                if all(
+                    np.max(np.abs(baseline[i0:i1] - m.fit_baseline) * inv_sigma[i0:i1], initial=0.0) < tolerance_sigma
+                    for m in members
+                ):
+                    out.extend(members)
+                    continue
+            n_fitted += 1
+            out.extend(fit_cluster(members, baseline))
+        return out, n_fitted
 
-    def settle(comps_, base, max_sweeps=6, tolerance_sigma=0.1):
-        """Sweep over the clusters until no area or position moves by more than
-        ``tolerance_sigma`` of its uncertainty (neighbours' tails are held fixed in each
-        cluster's fit, so the sweeps make the solution consistent: block coordinate descent)."""
+    def settle(comps_, base, max_sweeps=6):
+        """Sweep over the clusters until no cluster needs refitting (block coordinate descent:
+        the sweeps make the clusters' solutions consistent with each other's tails)."""
         for _ in range(max_sweeps):
-            before = {(round(c.params[0], 9)): c.params.copy() for c in comps_}
-            comps_ = refit(comps_, base)
-            moved = 0.0
-            for c in comps_:
-                sd = np.sqrt(np.clip(np.diag(c.cov), 1e-300, None))[[0, 3]]
-                old = min(before.values(), key=lambda p: abs(p[0] - c.params[0]))
-                moved = max(moved, float(np.max(np.abs(c.params[[0, 3]] - old[[0, 3]]) / sd)))
-            if moved < tolerance_sigma or len(comps_) != len(before):
-                if moved < tolerance_sigma:
-                    break
+            comps_, n_fitted = refit(comps_, base)
+            if n_fitted == 0:
+                break
         return comps_
 
     def from_candidates(cands_):
@@ -762,7 +775,7 @@ def _fit_rings(
     ]
     # two sweeps over the clusters: each is fitted with its neighbours' tails held fixed, so a
     # second sweep makes the solution consistent across clusters (block coordinate descent)
-    comps = settle(from_candidates(narrow), background)
+    comps = settle(from_candidates(narrow), background, max_sweeps=4)
 
     def residual_rounds(comps_, base):
         nonlocal settled
@@ -776,9 +789,7 @@ def _fit_rings(
             ][: max(0, min(max_new_per_round, max_components - len(comps_)))]
             if not extra_:
                 return comps_
-            n_old = len(comps_)
-            comps_ = comps_ + from_candidates(extra_)
-            comps_ = refit(comps_, base, only=set(range(n_old, len(comps_))))
+            comps_ = settle(comps_ + from_candidates(extra_), base, max_sweeps=2)
         settled = False
         return comps_
 
@@ -791,7 +802,7 @@ def _fit_rings(
         for _ in range(background_iterations):
             cleaned = np.maximum(y - _curve(g, comps), background - 2.0 * np.where(ok, sigma, 0.0))
             background = estimate_background(g, cleaned, sigma, smooth_per_nm=cleaned_smooth_per_nm)
-            comps = settle(comps, background, max_sweeps=3)
+            comps = settle(comps, background, max_sweeps=2)
 
     # Stage B: broad components (halos) on the residual of the rings, fitted jointly over the
     # whole profile with a smooth background correction, the rings held fixed; then the ring
@@ -828,7 +839,7 @@ def _fit_rings(
         ]
     if halos:
         base = background + correction + _curve(g, halos)
-        comps = settle(comps, base, max_sweeps=3)
+        comps = settle(comps, base, max_sweeps=2)
         comps = residual_rounds(comps, base)
     else:
         base = background
