@@ -3,6 +3,8 @@
 #   snakemake --cores 8 --configfile my.yaml     (your sheets and CIFs)
 # Stages (ringid/workflow/rules/): library -> calibration -> sample (image work) -> identify -> report.
 
+import sys
+
 from snakemake.utils import min_version, validate
 
 min_version("8.0")
@@ -11,7 +13,12 @@ min_version("8.0")
 configfile: "config/config.yaml"
 
 
-validate(config, "config/config.schema.yaml")
+from ringid.configcheck import config_problems
+
+_problems = config_problems(config, "config/config.schema.yaml")
+if _problems:
+    sys.exit("\n".join(f"ringid: error: {line}" for line in _problems))
+validate(config, "config/config.schema.yaml")  # fills the defaults
 
 
 include: "ringid/workflow/rules/common.smk"
