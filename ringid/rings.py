@@ -62,7 +62,9 @@ PEAK_PROMINENCE_SIGMA = 3.0
 # scales are √2 apart: 4 steps = a factor 4 in width (a shoulder of a much broader feature)
 SHOULDER_SCALE_STEPS = 4
 # largest cluster of overlapping rings fitted as one problem (4 parameters each)
-CLUSTER_MAX_MEMBERS = 6  # LSMR measured slower here even for 30 rings; kept as a switch
+CLUSTER_MAX_MEMBERS = 6
+# sampling kept in a cluster fit: bins per FWHM of its narrowest member
+BINS_PER_FWHM = 20  # LSMR measured slower here even for 30 rings; kept as a switch
 
 
 @dataclass(frozen=True)
@@ -613,6 +615,19 @@ def _clusters(comps, reach, max_members=CLUSTER_MAX_MEMBERS):
     return sorted(out, key=lambda grp: comps[grp[0]].params[0])
 
 
+def _grouped(g, y, sigma, ok, baseline, stride):
+    """Means over groups of ``stride`` bins (σ of a mean of valid bins: √Σσ²/n); a group with
+    any invalid bin is dropped."""
+    if stride <= 1:
+        return g, y, sigma, ok, baseline
+    n = (g.size // stride) * stride
+    shape = (-1, stride)
+    okg = ok[:n].reshape(shape).all(axis=1)
+    yg = np.where(ok[:n], y[:n], 0.0).reshape(shape).mean(axis=1)
+    sg = np.sqrt((np.where(ok[:n], sigma[:n], 1.0) ** 2).reshape(shape).sum(axis=1)) / stride
+    return g[:n].reshape(shape).mean(axis=1), yg, sg, okg, baseline[:n].reshape(shape).mean(axis=1)
+
+
 def _linear_basis(gw):
     """Local linear background correction on a window: rows 1 and (g − g_mid)/half-width."""
     mid, half = 0.5 * (gw[0] + gw[-1]), max(0.5 * (gw[-1] - gw[0]), 1e-12)
@@ -696,10 +711,13 @@ def _fit_rings(
             if okw.sum() < 4 * len(cands_) + 4:
                 rejected.extend(cands_)
                 return []
-            gw = g[win]
+            # broad members are sampled far finer than their shape needs: average the window
+            # into groups of bins, keeping ≥ BINS_PER_FWHM per FWHM of the narrowest member
+            # (the model evaluated at a group's centre differs from its mean by ≈ (Δ/FWHM)²/24)
+            stride = max(1, int(min(c.fwhm_per_nm for c in cands_) / (BINS_PER_FWHM * step)))
+            gw, yw, sw, okw, bw = _grouped(g[win], y[win], sigma[win], okw, baseline[win], stride)
             fit_ = _fit_components(
-                gw, y[win], sigma[win], okw, baseline[win], cands_, fwhm_lo, ring_hi, local_basis(gw),
-                max_nfev=cluster_max_nfev,
+                gw, yw, sw, okw, bw, cands_, fwhm_lo, ring_hi, local_basis(gw), max_nfev=cluster_max_nfev,
             )
             keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi)
             if keep_.all():
