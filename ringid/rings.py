@@ -370,13 +370,9 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
         x0 += [c.g_per_nm, w0, float(np.clip(c.eta, 0.0, 1.0)), a0]
         lo += [c.g_per_nm - dg, fwhm_lo, 0.0, 0.0]
         hi += [c.g_per_nm + dg, fwhm_hi, 1.0, np.inf]
-    sig_scale = float(np.median(sigma[ok]))
     x0 = np.array(x0 + [0.0] * n_bas)
     lo = np.array(lo + [-np.inf] * n_bas)
     hi = np.array(hi + [np.inf] * n_bas)
-    scale = np.abs(x0) + 1e-12
-    scale[0 : 4 * n_comp : 4] = np.maximum(x0[1 : 4 * n_comp : 4], step)  # positions scaled by widths
-    scale[4 * n_comp :] = sig_scale
     bas_w = (bas * ws).T
 
     def fun(p):
@@ -390,8 +386,10 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
     # exact trust-region steps (an SVD of J per iteration) for small problems; for many rings
     # the iterative LSMR solver is cheaper (the covariance below still uses the full SVD)
     solver = "exact" if x0.size <= LSMR_ABOVE_PARAMETERS else "lsmr"
+    # x_scale="jac": variables scaled by the Jacobian's column norms (measured: fewer iterations
+    # than fixed width/area scales on clusters of close rings)
     res = least_squares(
-        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale=scale, max_nfev=max_nfev, ftol=1e-5, xtol=1e-5,
+        fun, x0, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac", max_nfev=max_nfev, ftol=1e-5, xtol=1e-5,
         tr_solver=solver,
     )
     p = res.x
