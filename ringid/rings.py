@@ -837,8 +837,12 @@ def _fit_rings(
     halos: list[_Component] = []
     correction = np.zeros_like(g)
     cands_b = broad
+    # the broad fit runs on groups of bins, ≥ BINS_PER_FWHM per FWHM of the narrowest halo allowed
+    stride_b = max(1, int(0.5 * ring_hi / (BINS_PER_FWHM * step)))
+    gb, yb, sb, okb, bb = _grouped(g, y, sigma, ok, background + rings_curve, stride_b)
+    basis_b = _hat_basis(gb, max(correction_spacing_per_nm, 2.0 * fwhm_max))
     while cands_b:
-        fit_b = _fit_components(g, y, sigma, ok, background + rings_curve, cands_b, 0.5 * ring_hi, fwhm_hi, basis)
+        fit_b = _fit_components(gb, yb, sb, okb, bb, cands_b, 0.5 * ring_hi, fwhm_hi, basis_b)
         keep_b = _weakest_dropped(fit_b, confirm_sigma, 0.5 * ring_hi, data_range)
         if keep_b.all():
             converged = converged and fit_b.converged
@@ -846,7 +850,7 @@ def _fit_rings(
                 _Component(p, fit_b.cov[4 * k : 4 * k + 4, 4 * k : 4 * k + 4], c.snr)
                 for k, (p, c) in enumerate(zip(fit_b.params, cands_b))
             ]
-            correction = fit_b.correction
+            correction = np.interp(g, gb, fit_b.correction)  # linear between the group centres
             break
         cands_b = [
             Candidate(float(p[0]), float(p[1]), c.snr, float(p[3]), float(p[2]))
