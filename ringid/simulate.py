@@ -6,10 +6,12 @@ elliptical distortion of :mod:`ringid.ellipse`. The azimuthal-mean profile of a
 ring has an integrated area over g proportional to the listed ring intensity
 (Vainshtein's polycrystal formula; a :class:`ringid.model.PhaseRings` list is
 already in those units). Ring shape is a pseudo-Voigt whose Gaussian part is the
-instrumental FWHM and whose Lorentzian part is the Scherrer size broadening
-β = K_s/D in g units (a common practice choice; K_s = 0.89 by default, a cube-edge
-value of Langford & Wilson 1978), combined with the Thompson–Cox–Hastings (1987)
-formulas. Counts follow Poisson statistics.
+instrumental FWHM and whose Lorentzian part is the Scherrer size broadening of
+FWHM K_s/D in g units, combined with the Thompson–Cox–Hastings (1987) formulas. The
+default K_s = 8/(3π) = 0.8488 makes D the sphere diameter that :mod:`ringid.size` reports:
+a Lorentzian's integral breadth is (π/2)·FWHM, so its breadth is then 4/(3D), the
+sphere-diameter constant K_β = 4/3 of Langford & Wilson (1978). Counts follow Poisson
+statistics.
 
 Every pixel's undistorted radius is computed once and continuous rings are drawn
 by ``np.interp`` of a 1D profile, so 2048² takes a fraction of a second. Spotty
@@ -28,7 +30,7 @@ from .ellipse import undistorted_offsets
 from .model import Geometry
 from .units import electron_wavelength_angstrom
 
-DEFAULT_SCHERRER_CONSTANT = 0.89
+DEFAULT_SCHERRER_CONSTANT = 8.0 / (3.0 * math.pi)  # Lorentzian FWHM·D; integral breadth 4/(3D)
 
 
 @dataclass(frozen=True)
