@@ -16,22 +16,30 @@ z = Φ⁻¹(1 − α/M) (z ≈ 4.4 for α = 0.01 on a 1–14 nm⁻¹ profile). L
 taken from the finest scale up, so close rings are separated at the smallest width that
 resolves them (measured: two equal rings 1.0 FWHM apart are resolved).
 
-Fitting (:func:`fit_rings`) is a joint bounded least-squares problem (scipy ``least_squares``,
-trust-region reflective, analytic Jacobian) of all components, each a normalised pseudo-Voigt
-A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, on the background plus a smooth
-additive correction (linear B-splines, knots ≥ 4 nm⁻¹ apart) fitted with them. Uncertainties
-are the square roots of the diagonal of (JᵀJ)⁻¹·χ²_ν: the covariance scaled by the reduced χ².
-The search runs in two stages:
+Fitting (:func:`fit_rings`) is bounded least squares (scipy ``least_squares``, trust-region
+reflective, analytic Jacobian, ``x_scale='jac'``) of pseudo-Voigt components
+A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, done cluster by cluster so every
+problem stays small: a cluster is a run of rings within ±1.5 FWHM of each other (at most 6,
+split at the widest gap), fitted on its own window of ±8 FWHM (a Lorentzian keeps 96 % of
+its area inside; narrower windows let the local background trade against the tails) with a
+local linear correction on top of the clipped background; the tails of all other components
+are held fixed in its baseline, and the clusters are swept until no baseline changed by
+0.1 σ of a bin since its cluster's last fit (block coordinate descent). Broad windows are
+averaged into groups of bins (≥ 20 per FWHM). Uncertainties are the square roots of the
+diagonal of (JᵀJ)⁻¹·χ²_ν of the cluster fit (local background included). The search runs in
+two stages:
 
-A. the narrow candidates alone are fitted; the background is clipped again from the profile
-   with these rings taken out (twice), so the piled-up tails of close rings are not taken for
-   background (or, worse, for a halo);
-B. broad components (halos) and anything missed are searched on the residual, and the joint
-   fit is repeated: the least significant component is dropped while its A/σ_A <
-   ``confirm_sigma`` (one at a time, since components sharing a feature are each
-   insignificant), and the residual is searched again at the same threshold. A residual
-   detection is not added when it is not resolved from a component already there, is weaker
-   than ``shape_tolerance`` of a neighbour (shape misfit), or repeats a dropped one.
+A. the narrow candidates (FWHM below the halo threshold) alone; the least significant member
+   of a cluster is dropped while its A/σ_A < ``confirm_sigma``, and the residual is searched
+   again at the same threshold (a detection is not added when it is not resolved from a
+   component already there, is weaker than ``shape_tolerance`` of a neighbour, or repeats a
+   dropped one). The background is then clipped again from the profile with these rings
+   taken out (twice), so the piled-up tails of close rings are not taken for background (or,
+   worse, for a halo);
+B. broad components (halos) are searched at the broad scales on the residual and fitted
+   jointly over the whole profile with a smooth additive background correction (linear
+   B-splines, knots ≥ 4 nm⁻¹ apart), the rings held fixed; then the halos are held in the
+   baseline and the ring clusters refitted.
 
 :func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,
 crystallinity and (with a cake) ring character, returning a :class:`RingAnalysis`;
