@@ -4,6 +4,7 @@
 # Stages (ringid/workflow/rules/): library -> calibration -> sample (image work) -> identify -> report.
 
 import sys
+from pathlib import Path
 
 from snakemake.utils import min_version, validate
 
@@ -15,7 +16,7 @@ configfile: "config/config.yaml"
 
 from ringid.configcheck import config_problems
 
-_problems = config_problems(config, "config/config.schema.yaml")
+_problems = config_problems(config, Path(workflow.basedir) / "config" / "config.schema.yaml")
 if _problems:
     sys.exit("\n".join(f"ringid: error: {line}" for line in _problems))
 validate(config, "config/config.schema.yaml")  # fills the defaults
