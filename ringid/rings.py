@@ -846,8 +846,17 @@ def _fit_rings(
     correction = np.zeros_like(g)
     cands_b = broad
     # the broad fit runs on groups of bins, ≥ BINS_PER_FWHM per FWHM of the narrowest halo allowed
+    # Within one clipping window of the data ends the SNIP window is cut short (it shrinks to
+    # the distance from the end), so there the background cannot be told from a broad
+    # feature (the steep central-beam tail above all): the broad stage uses the bins at least
+    # one window inside the data.
+    from .background import DEFAULT_WINDOW_PER_NM as clip_window
+
+    inner = ok & (g >= data_range[0] + clip_window) & (g <= data_range[1] - clip_window)
+    broad = [c for c in broad if inner[int(np.clip(np.searchsorted(g, c.g_per_nm), 0, g.size - 1))]]
+    cands_b = broad
     stride_b = max(1, int(0.5 * ring_hi / (BINS_PER_FWHM * step)))
-    gb, yb, sb, okb, bb = _grouped(g, y, sigma, ok, background + rings_curve, stride_b)
+    gb, yb, sb, okb, bb = _grouped(g, y, sigma, inner, background + rings_curve, stride_b)
     basis_b = _hat_basis(gb, max(correction_spacing_per_nm, 2.0 * fwhm_max))
     while cands_b:
         fit_b = _fit_components(gb, yb, sb, okb, bb, cands_b, 0.5 * ring_hi, fwhm_hi, basis_b)
