@@ -3,7 +3,7 @@
 Scenario (invented for the demo; every pattern is simulated, none is measured): a sputtered
 TiO2 thin film annealed in steps, which goes from amorphous through anatase nanocrystals to an
 anatase + rutile mixture and finally rutile; a batch of CeO2 nanoparticles of three sizes; Ni
-particles with a NiO shell; a calibration film of evaporated Au recorded at the same camera
+particles with a NiO shell; a coarse-grained (annealed) Au calibration film recorded at the same camera
 length; and one blank exposure through a hole in the support film. 200 kV, 2048 × 2048 px,
 camera constant about 1000 Å·px, ellipticity 1.2 % from the projector lenses. Deterministic:
 the same seed gives the same files.
@@ -70,7 +70,7 @@ SCENARIO = (
                 extra={"background_counts": 40.0}),
 )
 
-CALIBRATION = DemoPattern("cal_Au_film", {"Au": 1.0}, "evaporated Au calibration film", crystallite_size_nm=40.0)
+CALIBRATION = DemoPattern("cal_Au_film", {"Au": 1.0}, "annealed, coarse-grained Au calibration film (rings at the instrumental width)")
 
 
 def _ring_list(library_dir: Path, weights: dict[str, float]):
