@@ -306,6 +306,10 @@ def detect_rings(
                 j = near[np.argmax(snr[kk + 1, near])]
                 if snr[kk + 1, j] <= snr[kk, ii]:
                     break
+                # a maximum that drifts away from where it started by more than its starting
+                # FWHM is being taken over by a neighbour: the feature itself ended
+                if abs(j - i) > max(1.0, FWHM_PER_SIGMA * scales[k]):
+                    break
                 kk, ii = kk + 1, j
             # a fine maximum that grows into a feature at least 3× broader, where another
             # accepted one already ended, is a shoulder of that broad feature, not a new ring
@@ -401,8 +405,14 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
         tr_solver=solver,
     )
     p = res.x
-    dof = max(gs.size - p.size, 1)
-    chi2_nu = float(np.sum(res.fun**2) / dof)
+    # reduced χ² over the bins under the components (±2 FWHM): misfit far out in a window, in the
+    # tails of neighbours held fixed, says nothing about these components' own uncertainty
+    centres, widths = p[0 : 4 * n_comp : 4], p[1 : 4 * n_comp : 4]
+    core = (np.abs(gs[:, None] - centres[None, :]) <= 2.0 * widths[None, :]).any(axis=1)
+    if core.sum() <= p.size:
+        core = np.ones(gs.size, bool)
+    dof = max(int(core.sum()) - p.size, 1)
+    chi2_nu = float(np.sum(res.fun[core] ** 2) / dof)
     J = res.jac
     # covariance (JᵀJ)⁻¹ χ²_ν via SVD (pseudo-inverse for degenerate directions)
     _, sv, vt = np.linalg.svd(J, full_matrices=False)
