@@ -26,6 +26,8 @@ from .atomic import atomic_path, write_json
 from .errors import RingidError
 from .model import Geometry
 
+DEFAULT_MIN_RING_G_PER_NM = 1.0
+
 SAMPLE_FILES = ("measured_rings.csv", "profile.csv", "thumbnail.npy", "sample.json")
 
 
@@ -63,6 +65,20 @@ def read_calibration_record(path: str | os.PathLike) -> tuple[Geometry, dict]:
     return geom, rec
 
 
+def trim_profile(profile, min_g_per_nm: float):
+    """The profile (and cake) from ``min_g_per_nm`` outwards."""
+    from dataclasses import replace
+
+    keep = profile.g_per_nm >= min_g_per_nm
+    if keep.all():
+        return profile
+    if keep.sum() < 16:
+        raise RingidError(None, f"the profile has almost no bins beyond g = {min_g_per_nm} 1/nm")
+    cake = None if profile.cake is None else profile.cake[:, keep]
+    return replace(profile, g_per_nm=profile.g_per_nm[keep], intensity=profile.intensity[keep],
+                   sigma=profile.sigma[keep], cake=cake)
+
+
 def instrument_from_record(rec: dict):
     """The instrumental ring profile of a calibration, or None when it was not measured."""
     from .size import InstrumentProfile
@@ -76,8 +92,13 @@ def instrument_from_record(rec: dict):
 
 def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike, out_dir: str | os.PathLike, *,
                    sample: str, calibration_id: str = "", note: str = "", voltage_kv: float = math.nan,
-                   max_pixels: int | None = None, saturation_level: float | None = None, user_mask=None) -> dict:
-    """Run the image half and the ring stage for one sample; write its folder; return the record."""
+                   max_pixels: int | None = None, saturation_level: float | None = None, user_mask=None,
+                   min_ring_g_per_nm: float = DEFAULT_MIN_RING_G_PER_NM) -> dict:
+    """Run the image half and the ring stage for one sample; write its folder; return the record.
+
+    Rings are searched from ``min_ring_g_per_nm`` outwards (default 1 nm⁻¹, d ≤ 10 Å): inside it
+    the direct beam's tail dominates a SAED profile. Lower it for phases with larger d-spacings.
+    """
     from .figures import make_thumbnail
     from .rings import analyze_profile, write_profile_csv, write_rings_csv
 
@@ -98,10 +119,11 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
         res = process_image(image, cal_geom, fit_ellipse=not measured_distortion, max_pixels=max_pixels,
                             saturation_level=saturation_level, user_mask_path=user_mask)
         t0 = time.perf_counter()
-        analysis = analyze_profile(res.profile, instrument=instrument_from_record(cal_rec))
+        profile = trim_profile(res.profile, min_ring_g_per_nm)
+        analysis = analyze_profile(profile, instrument=instrument_from_record(cal_rec))
         t_rings = time.perf_counter() - t0
         write_rings_csv(out / "measured_rings.csv", analysis)
-        write_profile_csv(out / "profile.csv", res.profile, analysis)
+        write_profile_csv(out / "profile.csv", profile, analysis)
         thumb, bin_px = make_thumbnail(res.data, res.mask.mask)
         with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
             np.save(tmp, thumb)
@@ -124,7 +146,7 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
             "crystallite_size_lower_limit_nm": size.lower_limit_nm if math.isfinite(size.lower_limit_nm) else None,
             "crystallite_size_meaning": size.meaning,
             "ring_character": ";".join(characters),
-            "g_range_per_nm": [float(np.nanmin(res.profile.g_per_nm)), float(np.nanmax(res.profile.g_per_nm))],
+            "g_range_per_nm": [float(np.nanmin(profile.g_per_nm)), float(np.nanmax(profile.g_per_nm))],
             "detection_threshold_sigma": analysis.threshold_sigma,
             "false_alarm_probability": analysis.false_alarm_probability,
             "chi2_reduced": analysis.chi2_reduced,

@@ -15,6 +15,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--max-pixels", type=int, metavar="N", help="refuse larger images")
     p.add_argument("--saturation-level", type=float, metavar="COUNTS", help="mask pixels at or above this level")
     p.add_argument("--mask", metavar="MASK", help="user mask image (non-zero = excluded)")
+    p.add_argument("--min-ring-g-per-nm", type=float, default=1.0, metavar="G",
+                   help="search rings from this g outwards (default 1.0 1/nm, d <= 10 Å; the direct-beam tail is inside)")
     p.set_defaults(func=run)
 
 
@@ -26,7 +28,8 @@ def run(args) -> int:
 
     rec = measure_sample(args.image, args.calibration, args.output, sample=args.sample or Path(args.image).stem,
                          calibration_id=args.calibration_id, note=args.note, voltage_kv=args.voltage_kv,
-                         max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask)
+                         max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
+                         min_ring_g_per_nm=args.min_ring_g_per_nm)
     if rec["status"] == "ok":
         print(f"{args.image}: {rec['crystallinity']}, {rec['n_rings']} rings ({rec['timings_s']['total']:.2f} s)", file=sys.stderr)
     else:

@@ -75,6 +75,8 @@ def sample_options(sample):
         out.append(f"--note {shlex.quote(row.note)}")
     if math.isfinite(row.voltage_kv):
         out.append(f"--voltage-kv {row.voltage_kv:g}")
+    if opts.get("min_ring_g_per_nm") is not None:
+        out.append(f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}")
     if opts.get("saturation_level") is not None:
         out.append(f"--saturation-level {float(opts['saturation_level'])}")
     if opts.get("user_mask"):
