@@ -91,6 +91,18 @@ def _read_csv(path: Path, problems: Problems) -> tuple[set[str], list[dict]] | N
     return set(header), [{(k or "").strip(): (v or "").strip() for k, v in r.items()} for r in rows]
 
 
+def _start(path, problems: Problems | None, what: str):
+    """Open a sheet: (raise-at-end?, problems, path, (header, rows) or None). A sheet that cannot
+    be read raises at once when nobody else collects the problems."""
+    own = problems is None
+    problems = problems or Problems()
+    path = Path(path)
+    read = _read_csv(path, problems)
+    if read is None and own:
+        problems.raise_if_any(what)
+    return own, problems, path, read
+
+
 def _check_id(path, line, column, value, problems) -> bool:
     if not value:
         problems.add(f"{path}:{line}", f"empty {column}")
@@ -125,14 +137,9 @@ def _image_path(sheet: Path, value: str) -> str:
 def read_calibrations(path: str | os.PathLike, phases_dir: str | os.PathLike | None = None,
                       problems: Problems | None = None) -> dict[str, CalibrationRow]:
     """Read and check the calibration sheet (collects problems when ``problems`` is given)."""
-    own = problems is None
-    problems = problems or Problems()
-    path = Path(path)
-    read = _read_csv(path, problems)
+    own, problems, path, read = _start(path, problems, "the calibration sheet")
     out: dict[str, CalibrationRow] = {}
     if read is None:
-        if own:
-            problems.raise_if_any("the calibration sheet")
         return out
     header, rows = read
     if "calibration" not in header or "voltage_kv" not in header:
@@ -182,14 +189,9 @@ def read_calibrations(path: str | os.PathLike, phases_dir: str | os.PathLike | N
 def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow] | None = None,
                  problems: Problems | None = None) -> dict[str, SampleRow]:
     """Read and check the sample sheet (collects problems when ``problems`` is given)."""
-    own = problems is None
-    problems = problems or Problems()
-    path = Path(path)
-    read = _read_csv(path, problems)
+    own, problems, path, read = _start(path, problems, "the sample sheet")
     out: dict[str, SampleRow] = {}
     if read is None:
-        if own:
-            problems.raise_if_any("the sample sheet")
         return out
     header, rows = read
     missing = [c for c in ("sample", "image", "calibration") if c not in header]
