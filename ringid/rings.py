@@ -488,13 +488,6 @@ def _weakest_dropped(
     return keep
 
 
-def _significant(fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0) -> np.ndarray:
-    """Components whose area is significant and whose width is not pressed against the floor."""
-    area_sigma = np.sqrt(np.clip(np.diag(fit.cov)[3::4], 0.0, None))
-    significant = fit.params[:, 3] >= confirm_sigma * np.where(area_sigma > 0, area_sigma, np.inf)
-    return significant & (fit.params[:, 1] > 1.02 * fwhm_floor)
-
-
 def _one_blas_thread():
     """Run the small dense linear algebra of a fit on one BLAS thread.
 
