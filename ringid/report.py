@@ -141,12 +141,13 @@ def _img(path: Path, alt: str) -> str:
 
 
 def _table(header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None) -> str:
-    out = [f'<table{f" id={chr(34)}{table_id}{chr(34)}" if table_id else ""}><thead><tr>']
+    id_attr = f' id="{_e(table_id)}"' if table_id else ""
+    out = [f"<table{id_attr}><thead><tr>"]
     out += [f'<th onclick="sortTable(this)">{_e(h)}</th>' for h in header]
     out.append("</tr></thead><tbody>")
     for k, row in enumerate(rows):
         cls = row_class(k) if row_class else ""
-        out.append(f'<tr{f" class={chr(34)}{cls}{chr(34)}" if cls else ""}>')
+        out.append(f'<tr class="{_e(cls)}">' if cls else "<tr>")
         out += [f'<td class="num">{_e(v)}</td>' if i in numeric else f"<td>{_e(v)}</td>" for i, v in enumerate(row)]
         out.append("</tr>")
     out.append("</tbody></table>")

@@ -108,7 +108,7 @@ def _rings(phase, d_min=0.5):
     return rings, refl, ring_of
 
 
-def _allowed_hkl(refl, ring_of, rings):
+def _allowed_hkl(refl, ring_of):
     kinematic = ring_of >= 0
     kinematic &= refl.f_squared > 1e-10 * refl.f_squared.max()
     return refl.hkl[kinematic]
@@ -136,7 +136,7 @@ def test_diamond_absences_and_double_diffraction():
     # source: International Tables A, Fd-3m (origin 2): F-centring, and for hkl all even
     # h+k+l = 4n (0kl: k+l = 4n from the d-glide; 222 extinguished by the 8a site)
     rings, refl, ring_of = _rings("Si")
-    hkl = _allowed_hkl(refl, ring_of, rings)
+    hkl = _allowed_hkl(refl, ring_of)
     even = (np.mod(hkl, 2) == 0).all(axis=1)
     assert np.all(hkl[even].sum(axis=1) % 4 == 0)
     labels = dict(zip(rings.hkl, rings.double_diffraction))
@@ -161,7 +161,7 @@ def test_hcp_0001_forbidden_0002_allowed():
 def test_rutile_h0l_with_h_plus_l_odd_absent():
     # source: International Tables A, P4_2/mnm: h0l (0kl) reflections only with h+l = 2n
     _, refl, ring_of = _rings("TiO2_rutile")
-    hkl = _allowed_hkl(refl, ring_of, None)
+    hkl = _allowed_hkl(refl, ring_of)
     h0l = hkl[hkl[:, 1] == 0]
     assert len(h0l) and np.all((h0l[:, 0] + h0l[:, 2]) % 2 == 0)
 
