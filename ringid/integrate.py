@@ -319,6 +319,7 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     except RingidError as exc:
         if "ring" not in exc.problem:
             raise
+        _refuse_centre_outside(img.data, masks.mask, path)
         cc = coarse_center(img.data, masks.mask)
         fit = None
         g = Geometry(center_x_px=cc.center_x_px, center_y_px=cc.center_y_px, ellipticity=calibration.ellipticity,
@@ -335,6 +336,28 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     t["integrate"] = time.perf_counter() - t0
     return ImageResult(geometry=geometry, profile=profile, fit=fit, mask=masks, path=str(path), flags=tuple(flags),
                        notes=tuple(notes), warnings=tuple(img.warnings), timings_s=t, data=img.data)
+
+
+FALLOFF_AGREEMENT_MIN = 0.8  # blocks whose gradient points at the falloff centre (noise: ≈ 0.2–0.4, measured)
+
+
+def _refuse_centre_outside(data, mask, path) -> None:
+    """Raise when the pattern is centred outside the frame (arcs, not rings).
+
+    Called when no ring was found about a centre inside the image: if the gradients of the
+    whole image agree (≥ FALLOFF_AGREEMENT_MIN) on a centre outside it, the rings are arcs
+    about a direct beam off the detector, and a centre from point symmetry would be wrong.
+    """
+    from .center import falloff_center
+    from .errors import RingidError
+
+    fc = falloff_center(data, mask)
+    ny, nx = data.shape
+    inside = -0.5 <= fc.center_x_px <= nx - 0.5 and -0.5 <= fc.center_y_px <= ny - 0.5
+    if fc.agreement >= FALLOFF_AGREEMENT_MIN and not inside:
+        raise RingidError(path, f"the pattern's centre is outside the image (near x = {fc.center_x_px:.0f}, "
+                                f"y = {fc.center_y_px:.0f} px; image {nx}×{ny} px): the rings are arcs, "
+                                "record the pattern with the direct beam on the detector")
 
 
 def _nothing_usable(img, saturation_level: float) -> str:

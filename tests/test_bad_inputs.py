@@ -12,9 +12,8 @@ Where the user meets each problem:
 
 Decisions: an image with no usable pixel (all zero, all saturated, all NaN) is an error (the
 recording failed; nothing can be measured), a pattern with counts but no ring is a result
-(``no_signal``); a pattern whose rings are arcs about a centre outside the image should be an
-error (a centre from point symmetry is wrong there): today it is flagged ``center_from_symmetry``
-and reported as ``no_signal`` (an xfail test below keeps the gap visible).
+(``no_signal``); a pattern whose rings are arcs about a centre outside the image is an error (a
+centre from point symmetry is wrong there; the centre of the intensity falloff tells it).
 """
 
 from __future__ import annotations
@@ -183,12 +182,31 @@ def test_centre_outside_the_image_is_flagged(tmp_path, calibration, capsys):
     assert rec["status"] == "failed" or "center_from_symmetry" in rec["flags"], rec
 
 
-@pytest.mark.xfail(strict=True, reason="known gap: arcs about a centre outside the image fall back to a symmetry "
-                                       "centre inside it and are reported as no_signal instead of an error")
 def test_centre_outside_the_image_is_an_error(tmp_path, calibration, capsys):
     image = _offcentre(tmp_path / "offcentre.tif")
     _, rec, _ = run_measure(image, calibration, tmp_path / "out", capsys)
     assert rec["status"] == "failed" and rec["error"].startswith(f"{image}: "), rec
+    assert "centre is outside the image" in rec["error"], rec
+
+
+@pytest.mark.parametrize("centre", [(-60.0, 100.0), (300.0, 128.0), (128.0, -10.0)])
+def test_falloff_centre_found_outside_the_frame(centre):
+    """The falloff centre is where the simulated direct beam is, also off the frame."""
+    from ringid.center import falloff_center
+
+    fc = falloff_center(ring_pattern(center_x_px=centre[0], center_y_px=centre[1]))
+    assert fc.agreement > 0.9
+    assert abs(fc.center_x_px - centre[0]) < 5.0 and abs(fc.center_y_px - centre[1]) < 5.0, fc
+
+
+def test_falloff_centre_of_noise_does_not_agree():
+    """Poisson noise on a flat level has no falloff: its gradients agree on no centre."""
+    from ringid.center import falloff_center
+    from ringid.integrate import FALLOFF_AGREEMENT_MIN
+
+    for seed in range(5):
+        data = np.random.default_rng(seed).poisson(100.0, (256, 256)).astype(float)
+        assert falloff_center(data).agreement < FALLOFF_AGREEMENT_MIN
 
 
 def test_ring_pattern_control_is_measured(tmp_path, calibration, capsys):
