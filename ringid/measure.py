@@ -105,10 +105,7 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     t_start = time.perf_counter()
-    record = {
-        "sample": sample, "status": "ok", "error": "", "image": str(image), "calibration": calibration_id,
-        "note": note, "ringid_version": __version__,
-    }
+    record = _base_record(sample, image, calibration_id, note)
     try:
         cal_geom, cal_rec = read_calibration_record(calibration_path)
         if math.isfinite(voltage_kv) and math.isfinite(cal_geom.voltage_kv) and abs(voltage_kv - cal_geom.voltage_kv) > 1e-6:
@@ -157,14 +154,37 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
         })
         record["timings_s"] = {**{k: round(v, 4) for k, v in res.timings_s.items()}, "rings": round(t_rings, 4)}
     except Exception as exc:  # noqa: BLE001 - a failure is a result, recorded with its reason
-        record.update(status="failed", error=_error_text(exc), crystallinity="no_signal", n_rings=0, flags=[])
-        for name in ("measured_rings.csv", "profile.csv"):
-            _write_empty_table(out / name)
-        with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
-            np.save(tmp, np.zeros((0, 0), np.uint8))
+        _mark_failed(out, record, exc)
     record.setdefault("timings_s", {})
     record["timings_s"]["total"] = round(time.perf_counter() - t_start, 4)
     write_json(out / "sample.json", record)  # written last: its presence means the job finished
+    return record
+
+
+def _base_record(sample: str, image, calibration_id: str, note: str) -> dict:
+    return {"sample": sample, "status": "ok", "error": "", "image": str(image), "calibration": calibration_id,
+            "note": note, "ringid_version": __version__}
+
+
+def _mark_failed(out: Path, record: dict, exc: BaseException) -> None:
+    """Record ``exc`` as the sample's failure and write its empty tables and thumbnail."""
+    record.update(status="failed", error=_error_text(exc), crystallinity="no_signal", n_rings=0, flags=[])
+    for name in ("measured_rings.csv", "profile.csv"):
+        _write_empty_table(out / name)
+    with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
+        np.save(tmp, np.zeros((0, 0), np.uint8))
+
+
+def write_failed_sample(out_dir: str | os.PathLike, exc: BaseException, *, sample: str, image, calibration_id: str = "",
+                        note: str = "", elapsed_s: float = 0.0) -> dict:
+    """The sample folder of a sample whose image job broke outside ``measure_sample``'s own
+    handling (e.g. while writing its record): the same failed record and empty files."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    record = _base_record(sample, image, calibration_id, note)
+    _mark_failed(out, record, exc)
+    record["timings_s"] = {"total": round(elapsed_s, 4)}
+    write_json(out / "sample.json", record)
     return record
 
 
@@ -225,24 +245,12 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     """
     import json
 
-    from .atomic import write_csv
-    from .identify import PHASES_COLUMNS, IdentifySettings, identify, read_observed_rings, write_results
+    from .identify import IdentifySettings, identify, read_observed_rings, write_results
 
     d = Path(sample_dir)
     rec = json.loads((d / "sample.json").read_text(encoding="utf-8"))
     if rec.get("status") != "ok":
-        from .rings import RINGS_CSV_COLUMNS
-
-        write_csv(d / "phases.csv", PHASES_COLUMNS, [])
-        write_csv(d / "rings.csv", RINGS_CSV_COLUMNS + ["double_diffraction", "d_calc_angstrom"], [])
-        out = {"status": "failed", "error": rec.get("error", ""), "phases": [], "confidence": [], "alternatives": [],
-               "unexplained_rings": 0, "flags": []}
-        write_json(d / "identification.json", out)
-        from .figures import overview_png
-
-        overview_png(d / "overview.png", title=f"{rec.get('sample', d.name)}: failed: {rec.get('error', '')}"[:150],
-                     thumbnail=None, bin_px=1, geometry={}, profile=None, rings=[], references=[])
-        return out
+        return _write_failed_identification(d, rec.get("sample", d.name), rec.get("error", ""))
     kind = rec.get("calibration_kind", "standard")
     settings = IdentifySettings(dilation_window=window_nominal if kind == "nominal" else window_standard)
     obs, rows = read_observed_rings(d / "measured_rings.csv")
@@ -251,6 +259,29 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     write_results(d, rows, obs, result, settings, provenance={"library": library_dir})
     _overview(d, rec, rows, result, library)
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
+
+
+def write_failed_identification(sample_dir: str | os.PathLike, exc: BaseException) -> dict:
+    """The identification files of a sample whose identification broke (``exc``): empty tables
+    and a failed record with its one-line error, as for a sample whose image job failed."""
+    d = Path(sample_dir)
+    return _write_failed_identification(d, d.name, _error_text(exc))
+
+
+def _write_failed_identification(d: Path, sample: str, error: str) -> dict:
+    from .atomic import write_csv
+    from .figures import overview_png
+    from .identify import PHASES_COLUMNS
+    from .rings import RINGS_CSV_COLUMNS
+
+    write_csv(d / "phases.csv", PHASES_COLUMNS, [])
+    write_csv(d / "rings.csv", RINGS_CSV_COLUMNS + ["double_diffraction", "d_calc_angstrom"], [])
+    out = {"status": "failed", "error": error, "phases": [], "confidence": [], "alternatives": [],
+           "unexplained_rings": 0, "flags": []}
+    write_json(d / "identification.json", out)
+    overview_png(d / "overview.png", title=f"{sample}: failed: {error}"[:150],
+                 thumbnail=None, bin_px=1, geometry={}, profile=None, rings=[], references=[])
+    return out
 
 
 def _overview(d: Path, rec: dict, rows, result, library) -> None:
