@@ -26,6 +26,7 @@ COMMANDS = [
     ("calibration", "calibration job of the workflow: one row of the calibration sheet"),
     ("measure", "image job of one sample: pattern -> profile -> rings"),
     ("identify", "score a sample's rings against the phase library"),
+    ("batch", "several samples in one process: image jobs of a manifest, identification of sample folders"),
     ("report", "summary.csv and report.html of a results folder"),
     ("analyze", "one pattern through every stage in one process (no workflow)"),
 ]
