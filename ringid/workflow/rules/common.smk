@@ -69,12 +69,20 @@ def sample_options(sample):
     import shlex
 
     row = SAMPLES[sample]
-    opts = config.get("image", {})
     out = [f"--calibration-id {shlex.quote(row.calibration)}"]
     if row.note:
         out.append(f"--note {shlex.quote(row.note)}")
     if math.isfinite(row.voltage_kv):
         out.append(f"--voltage-kv {row.voltage_kv:g}")
+    return " ".join(part for part in [*out, image_options()] if part)
+
+
+def image_options():
+    """The image-job options from the config's image section, shell-quoted (the same for every sample)."""
+    import shlex
+
+    opts = config.get("image", {})
+    out = []
     if opts.get("min_ring_g_per_nm") is not None:
         out.append(f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}")
     if opts.get("saturation_level") is not None:
