@@ -365,7 +365,7 @@ class _Fit:
     converged: bool = True
 
 
-def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis, max_nfev=200):
+def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis, max_nfev=200, step=None):
     """Joint bounded least squares of pseudo-Voigt components plus a smooth background correction."""
     from scipy.optimize import least_squares
 
@@ -373,7 +373,8 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
     gs, ys, ws = g[ok], (y - background)[ok], 1.0 / sigma[ok]
     bas = basis[:, ok]
     n_bas = bas.shape[0]
-    step = float(np.median(np.diff(g)))
+    if step is None:
+        step = float(np.median(np.diff(g)))
     x0, lo, hi = [], [], []
     for c in cands:
         w0 = float(np.clip(c.fwhm_per_nm, fwhm_lo * 1.01, fwhm_hi * 0.99))
@@ -727,6 +728,7 @@ def _fit_rings(
             gw, yw, sw, okw, bw = _grouped(g[win], y[win], sigma[win], okw, baseline[win], stride)
             fit_ = _fit_components(
                 gw, yw, sw, okw, bw, cands_, fwhm_lo, ring_hi, local_basis(gw), max_nfev=cluster_max_nfev,
+                step=step * stride,
             )
             keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi)
             if keep_.all():
@@ -800,11 +802,16 @@ def _fit_rings(
         for c in detect_rings(g, y - background, sigma, max_components=max_components, **detect)
         if c.fwhm_per_nm < ring_hi
     ]
-    # two sweeps over the clusters: each is fitted with its neighbours' tails held fixed, so a
-    # second sweep makes the solution consistent across clusters (block coordinate descent)
-    comps = settle(from_candidates(narrow), background, max_sweeps=4)
+    # sweeps over the clusters: each is fitted with its neighbours' tails held fixed, so further
+    # sweeps make the solution consistent across clusters (block coordinate descent). When the
+    # background is clipped again below, only the sweeps after the last clipping need to
+    # converge: before it, two sweeps here and one per residual round and per earlier clipping
+    # (measured on a 21-ring 2048² profile: 29 % fewer cluster fits, the same rings, sizes of
+    # broad rings within 0.6 % of full sweeps)
+    reclip = not background_given and background_iterations > 0
+    comps = settle(from_candidates(narrow), background, max_sweeps=2 if reclip else 4)
 
-    def residual_rounds(comps_, base):
+    def residual_rounds(comps_, base, sweeps=2):
         nonlocal settled
         for _ in range(max_rounds):
             model_ = base + _curve(g, comps_)
@@ -816,20 +823,20 @@ def _fit_rings(
             ][: max(0, min(max_new_per_round, max_components - len(comps_)))]
             if not extra_:
                 return comps_
-            comps_ = settle(comps_ + from_candidates(extra_), base, max_sweeps=2)
+            comps_ = settle(comps_ + from_candidates(extra_), base, max_sweeps=sweeps)
         settled = False
         return comps_
 
-    comps = residual_rounds(comps, background)
+    comps = residual_rounds(comps, background, sweeps=1 if reclip else 2)
     # The tails of many close rings pile up into a broad pedestal that a clipped background
     # cannot tell from a halo: clip the background again from the profile with the fitted
     # rings taken out (dips deeper than 2σ below the first background are misfits, not
     # background, and are floored there), and refit.
     if comps and not background_given:
-        for _ in range(background_iterations):
+        for it in range(background_iterations):
             cleaned = np.maximum(y - _curve(g, comps), background - 2.0 * np.where(ok, sigma, 0.0))
             background = estimate_background(g, cleaned, sigma, smooth_per_nm=cleaned_smooth_per_nm)
-            comps = settle(comps, background, max_sweeps=2)
+            comps = settle(comps, background, max_sweeps=2 if it == background_iterations - 1 else 1)
 
     # Stage B: broad components (halos) on the residual of the rings, fitted jointly over the
     # whole profile with a smooth background correction, the rings held fixed; then the ring
