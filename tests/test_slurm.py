@@ -132,8 +132,10 @@ def inputs(tmp_path_factory):
     phases.mkdir()
     for phase in PHASES:
         shutil.copy(REFERENCE_PHASES / f"{phase}.cif", phases / f"{phase}.cif")
+    # batch_size 1: the profile's groups name the one-sample rules (measure, identify)
     return {"base": base, "config": [f"samples={demo / 'subset.csv'}",
-                                     f"calibrations={demo / 'calibrations.csv'}", f"phases_dir={phases}"]}
+                                     f"calibrations={demo / 'calibrations.csv'}", f"phases_dir={phases}",
+                                     "batch_size=1"]}
 
 
 def without_key(path, key):

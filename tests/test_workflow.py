@@ -60,8 +60,9 @@ def run(tmp_path_factory):
         w.writerows([r for r in rows if r["sample"] in SUBSET])
     phases = base / "phases"
     shutil.copytree(REFERENCE_PHASES, phases)
+    # batch_size 1: one job per sample and stage (the job counts below); batches: tests/test_batch.py
     config = [f"samples={base / 'demo' / 'subset.csv'}", f"calibrations={base / 'demo' / 'calibrations.csv'}",
-              f"results_dir={base / 'results'}", f"phases_dir={phases}"]
+              f"results_dir={base / 'results'}", f"phases_dir={phases}", "batch_size=1"]
     snakemake("--cores", "2", "--config", *config)
     return {"base": base, "results": base / "results", "config": config, "phases": phases}
 
