@@ -1,6 +1,7 @@
 """Benchmark harness: batch-scale speed of ringid (not a timed test).
 
-    python benchmarks/bench_workflow.py [--n 200] [--scales 50,100,200] [--size-px 2048] [--out bench_workflow.csv]
+    python benchmarks/bench_workflow.py [--n 200] [--scales 50,100,200] [--batch-size 4[,1]] [--size-px 2048]
+                                        [--out bench_workflow.csv]
 
 Generates N synthetic uint16 patterns with ringid's simulator (the demo scenario, cycled with new
 seeds) plus a calibration film, then measures in one run:
@@ -10,9 +11,11 @@ seeds) plus a calibration film, then measures in one run:
 - t_read: ``tifffile.imread`` of one pattern;
 - each ringid stage in-process (load, mask, centre, integrate, rings, identify) over a few patterns;
 - the per-job interpreter start and import cost of the image job and of the identification job;
-- the whole workflow's wall time with ``snakemake --cores 2`` for each N in --scales, and the
-  slope per pattern from a linear fit;
-- peak memory per image job (Snakemake benchmark files, max_rss);
+- the whole workflow's wall time with ``snakemake --cores 2`` for each N in --scales and each
+  config batch_size in --batch-size (samples per job; default: the config's own), and the slope
+  per pattern from a linear fit;
+- peak memory per image job (Snakemake benchmark files, max_rss; a batch job holds one image at
+  a time);
 - the library build and the scoring time per sample.
 
 Prints a table and writes it as CSV. Ratios to t_int are what to compare across machines.
@@ -96,11 +99,15 @@ def main() -> None:
     parser.add_argument("--scales", default="50,100,200", help="comma-separated N for the scaling runs")
     parser.add_argument("--size-px", type=int, default=2048)
     parser.add_argument("--cores", type=int, default=2)
+    parser.add_argument("--batch-size", default=str(config_batch_size()),
+                        help="comma-separated config batch_size values to run the workflow with "
+                             "(default: config/config.yaml's)")
     parser.add_argument("--out", default="bench_workflow.csv")
     parser.add_argument("--keep", metavar="DIR", help="work in DIR and keep it")
     args = parser.parse_args()
     SCALES = sorted(int(x) for x in args.scales.split(",") if x)
     SCALES = [s for s in SCALES if s <= args.n]
+    batch_sizes = [int(x) for x in args.batch_size.split(",") if x]
 
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="ringid-bench-"))
     work.mkdir(parents=True, exist_ok=True)
@@ -157,34 +164,38 @@ def main() -> None:
         import_cost("ringid.cli, ringid.identify, ringid.figures, matplotlib.pyplot"), "s")
 
     env = dict(os.environ, PATH=os.path.dirname(sys.executable) + os.pathsep + os.environ.get("PATH", ""))
-    walls = {}
-    for n in SCALES:
-        results = work / f"results_{n}"
-        cmd = [sys.executable, "-m", "snakemake", "--cores", str(args.cores), "-q", "--config",
-               f"samples={work / f'samples_{n}.csv'}", f"calibrations={work / 'calibrations.csv'}",
-               f"results_dir={results}"]
-        t0 = time.perf_counter()
-        subprocess.run(cmd, cwd=ROOT, check=True, env=env, capture_output=True)
-        walls[n] = time.perf_counter() - t0
-        rec(f"workflow wall time, N = {n}, --cores {args.cores}", walls[n], "s")
-        rss = []
-        for tsv in (results / "benchmarks" / "samples").glob("*.tsv"):
-            with open(tsv) as fh:
-                row = list(csv.DictReader(fh, delimiter="\t"))[0]
-            rss.append(float(row["max_rss"]))
-        if rss:
-            rec(f"peak RSS per image job, N = {n} (max)", max(rss), "MB")
-    if len(walls) >= 2:
-        ns = np.array(sorted(walls))
-        ts = np.array([walls[n] for n in ns])
-        slope, intercept = np.polyfit(ns, ts, 1)
-        resid = ts - (slope * ns + intercept)
-        rec("workflow slope per pattern", slope, "s")
-        rec("workflow intercept (fixed cost)", intercept, "s")
-        rec("largest deviation from the linear fit", float(np.max(np.abs(resid))), "s")
-        n_max = int(ns.max())
-        target = 3 * n_max * t_int / args.cores
-        rec(f"workflow N = {n_max} / (3 × N × t_int / cores) (target <= 1)", walls[n_max] / target, "ratio")
+    for bs in batch_sizes:
+        rec("batch_size (samples per image / identification job)", bs, "")
+        walls = {}
+        for n in SCALES:
+            results = work / f"results_{n}_b{bs}"
+            cmd = [sys.executable, "-m", "snakemake", "--cores", str(args.cores), "-q", "--config",
+                   f"samples={work / f'samples_{n}.csv'}", f"calibrations={work / 'calibrations.csv'}",
+                   f"results_dir={results}", f"batch_size={bs}"]
+            t0 = time.perf_counter()
+            subprocess.run(cmd, cwd=ROOT, check=True, env=env, capture_output=True)
+            walls[n] = time.perf_counter() - t0
+            rec(f"workflow wall time, N = {n}, --cores {args.cores}, batch_size {bs}", walls[n], "s")
+            rss = []
+            for tsv in [*(results / "benchmarks" / "samples").glob("*.tsv"), *(results / "benchmarks" / "batches").glob("*.tsv")]:
+                with open(tsv) as fh:
+                    row = list(csv.DictReader(fh, delimiter="\t"))[0]
+                rss.append(float(row["max_rss"]))
+            if rss:
+                rec(f"peak RSS per image job, N = {n}, batch_size {bs} (max of {len(rss)} jobs)", max(rss), "MB")
+        if len(walls) >= 2:
+            ns = np.array(sorted(walls))
+            ts = np.array([walls[n] for n in ns])
+            slope, intercept = np.polyfit(ns, ts, 1)
+            resid = ts - (slope * ns + intercept)
+            rec(f"workflow slope per pattern, batch_size {bs}", slope, "s")
+            rec(f"workflow intercept (fixed cost), batch_size {bs}", intercept, "s")
+            rec(f"largest deviation from the linear fit, batch_size {bs}", float(np.max(np.abs(resid))), "s")
+        if walls:
+            n_max = max(walls)
+            target = 3 * n_max * t_int / args.cores
+            rec(f"workflow N = {n_max} / (3 × N × t_int / cores), batch_size {bs} (target <= 1)",
+                walls[n_max] / target, "ratio")
     with open(args.out, "w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["quantity", "value", "unit"])
@@ -194,6 +205,12 @@ def main() -> None:
 
 
 SCALES: list[int] = []
+
+
+def config_batch_size() -> int:
+    import yaml
+
+    return int(yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8")).get("batch_size", 1))
 
 if __name__ == "__main__":
     main()
