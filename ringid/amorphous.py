@@ -10,18 +10,22 @@ use a halo of the right position, width and shape rather than a hand-placed Gaus
    Jodrey & Tory 1985, Phys. Rev. A 32, 2347), giving a random dense packing at a chosen
    packing fraction (random close packing of equal spheres is about 0.64; Scott & Kilgour
    1969, J. Phys. D 2, 863).
-2. :func:`debye_intensity` evaluates the Debye (1915) scattering equation
-   I(g) = Σ_i Σ_j f_i f_j sin(2π g r_ij)/(2π g r_ij) over a spherical cluster cut from the box,
-   with the pair distances binned (0.01 Å) so the cost is one matrix product.
+2. :func:`periodic_structure_intensity` evaluates the Debye (1915) pair sum
+   Σ_i Σ_j f_i f_j sin(2π g r_ij)/(2π g r_ij) over the minimum-image pairs of the periodic box
+   within half its edge, minus the same sum for a uniform density (Faber–Ziman form), with the
+   Lorch (1969) window against truncation ripples; the pair distances are binned (0.01 Å) so
+   the cost is one matrix product. (:func:`debye_intensity` is the plain Debye equation of a
+   finite cluster.)
 3. :func:`electron_scattering_factor_angstrom` gives f_e(s) of neutral atoms from the
    five-Gaussian fits of International Tables Vol. C Table 4.3.2.2 (gemmi ``Element.c4322``),
    s = sinθ/λ = g/2.
 
 :func:`amorphous_halo_profile` strings these together and returns the scattered intensity per
-atom on a g grid in 1/nm (units Å², i.e. f_e² units). The scattering of the cluster's outer
-shape (a small-angle peak at g ≲ 1/R) is removed by subtracting the continuum-sphere term
-N²⟨f⟩²Φ(2πgR)², Φ(x) = 3(sin x − x cos x)/x³ (Rayleigh 1911), leaving the scattering of an extended film (for one element, I(g)/N = f² S(g) with S the
-structure factor).
+atom on a g grid in 1/nm (units Å², i.e. f_e² units) of an extended film, with no scattering
+from an outer surface (for one element, I(g)/N = f² S(g) with S the structure factor). A
+cluster cut from the box instead, even with the continuum-sphere term N²⟨f⟩²Φ(2πgR)²
+subtracted, keeps a small-angle residual from its rough surface whose oscillations (measured:
+bumps of 30 % of the curve at g ≈ 1–2 nm⁻¹ for a-TiO2) look like weak rings.
 
 Note on the a-Si check value of METHODS.md §7: a dense packing of spheres has its first peak at
 Q·r1 ≈ 7–7.7 (r1 the contact distance), i.e. Q ≈ 3.1 Å⁻¹ for Si-sized (2.35 Å) spheres, the
@@ -180,12 +184,65 @@ def _parse_composition(composition) -> tuple[list[str], np.ndarray]:
 
 
 @functools.lru_cache(maxsize=16)
-def _cluster(n_atoms: int, diameter: float, packing_fraction: float, seed: int):
-    pos, box = random_dense_packing(n_atoms, diameter, packing_fraction, seed)
-    center = np.full(3, box / 2.0)
-    radius = box / 2.0
-    inside = np.sum((pos - center) ** 2, axis=1) < radius**2
-    return pos[inside] - center, radius
+def _packing(n_atoms: int, diameter: float, packing_fraction: float, seed: int):
+    return random_dense_packing(n_atoms, diameter, packing_fraction, seed)
+
+
+def lorch_window(r, r_max):
+    """Lorch (1969) modification function W(r) = sin(πr/r_max)/(πr/r_max), 0 beyond r_max."""
+    r = np.asarray(r, dtype=float)
+    return np.where(r < r_max, np.sinc(r / r_max), 0.0)
+
+
+def periodic_structure_intensity(
+    positions_angstrom: np.ndarray,
+    box_angstrom: float,
+    g_per_nm,
+    scattering_factors: np.ndarray,
+    species: np.ndarray | None = None,
+) -> np.ndarray:
+    """Scattering per atom of the bulk material a periodic box stands for (Faber–Ziman form).
+
+    I(g)/N = (1/N) Σ_a N_a f_a² + (1/N) Σ_ab f_a f_b [ Σ_(i∈a, j∈b, r_ij<R) s(r_ij)
+             − (N_a N_b / V) ∫_0^R 4πr² s(r) dr ],   s(r) = sinc(2πgr) W(r),
+
+    over the minimum-image pairs within R = half the box edge, with the Lorch window W (which
+    damps the ripples of cutting the pair sum at R). The second term subtracts the uniform
+    density, so unlike the Debye equation of a cluster cut from the box there is no scattering
+    from an outer surface (no small-angle peak and no oscillations of a cluster form factor):
+    this is the scattering of an extended film. For one element I/N = f² S(g) with S the
+    structure factor (Faber & Ziman 1965, Phil. Mag. 11, 153).
+    """
+    from scipy.spatial import cKDTree
+
+    pos = np.asarray(positions_angstrom, dtype=float)
+    box = float(box_angstrom)
+    n = len(pos)
+    g_inv_angstrom = np.asarray(g_per_nm, dtype=float) / 10.0
+    f = np.atleast_2d(np.asarray(scattering_factors, dtype=float))
+    species = np.zeros(n, dtype=int) if species is None else np.asarray(species, dtype=int)
+    counts = np.bincount(species, minlength=f.shape[0])
+    r_max = 0.5 * box
+    pairs = cKDTree(pos % box, boxsize=box).query_pairs(r_max, output_type="ndarray")
+    sep = pos[pairs[:, 1]] - pos[pairs[:, 0]]
+    sep -= box * np.round(sep / box)  # minimum image
+    r = np.sqrt(np.einsum("ij,ij->i", sep, sep))
+    edges = np.arange(0.0, r_max + _PAIR_BIN_ANGSTROM, _PAIR_BIN_ANGSTROM)
+    centers = 0.5 * (edges[1:] + edges[:-1])
+    s_r = np.sinc(2.0 * np.multiply.outer(g_inv_angstrom, centers)) * lorch_window(centers, r_max)
+    # the uniform-density term ∫ 4πr² s(r) dr on the same bins
+    uniform = s_r @ (4.0 * np.pi * centers**2 * _PAIR_BIN_ANGSTROM)
+    volume = box**3
+    total = (counts[:, None] * f**2).sum(axis=0)
+    sa, sb = species[pairs[:, 0]], species[pairs[:, 1]]
+    for a in range(f.shape[0]):
+        for b in range(a, f.shape[0]):
+            sel = ((sa == a) & (sb == b)) | ((sa == b) & (sb == a))
+            h = np.histogram(r[sel], bins=edges)[0].astype(float)
+            # ordered pairs (i, j) and (j, i); expected ordered pairs of a uniform density
+            expected = counts[a] * (counts[a] - 1) if a == b else 2.0 * counts[a] * counts[b]
+            total = total + f[a] * f[b] * (2.0 * (s_r @ h) - expected / volume * uniform)
+    return total / n
 
 
 def amorphous_halo_profile(
@@ -196,7 +253,6 @@ def amorphous_halo_profile(
     n_atoms: int = 2000,
     seed: int = 0,
     b_iso_angstrom2: float = 0.0,
-    remove_shape_term: bool = True,
 ) -> np.ndarray:
     """Kinematic electron scattering per atom (Å²) of a random dense packing, on a g grid.
 
@@ -207,24 +263,19 @@ def amorphous_halo_profile(
         (``{"Cu": 0.5, "Zr": 0.5}``); species are assigned to sites at random.
     diameter_angstrom : sphere (contact) diameter ≈ nearest-neighbour distance in Å
     packing_fraction : sphere volume fraction of the packing (≤ 0.64)
-    n_atoms : atoms in the periodic box; a sphere of radius box/2 (≈ 52 % of them) is used
+    n_atoms : atoms in the periodic box (pairs are summed to half its edge)
     seed : random seed (the structure is cached per parameter set)
     b_iso_angstrom2 : Debye–Waller B in Å² applied to f
-    remove_shape_term : subtract the continuum-sphere small-angle term N²⟨f⟩²Φ(2πgR)²
 
     Returns
     -------
-    I(g) / N in Å²: halo intensity per atom, which tends to ⟨f²⟩ at large g.
+    I(g) / N in Å²: halo intensity per atom of the extended material
+    (:func:`periodic_structure_intensity`), which tends to ⟨f²⟩ at large g.
     """
     g = np.asarray(g_per_nm, dtype=float)
     symbols, frac = _parse_composition(composition)
-    pos, radius = _cluster(int(n_atoms), float(diameter_angstrom), float(packing_fraction), int(seed))
+    pos, box = _packing(int(n_atoms), float(diameter_angstrom), float(packing_fraction), int(seed))
     rng = np.random.default_rng(seed + 1)
     species = rng.choice(len(symbols), size=len(pos), p=frac)
     f = np.array([electron_scattering_factor_angstrom(s, g, b_iso_angstrom2) for s in symbols])
-    intensity = debye_intensity(pos, g, f, species)
-    n = len(pos)
-    if remove_shape_term:
-        mean_f = (np.bincount(species, minlength=len(symbols))[:, None] * f).sum(axis=0) / n
-        intensity = intensity - (n * mean_f) ** 2 * sphere_form_factor(2.0 * np.pi * (g / 10.0) * radius) ** 2
-    return intensity / n
+    return periodic_structure_intensity(pos, box, g, f, species)
