@@ -91,3 +91,29 @@ def test_two_element_glass_and_bad_input():
         amorphous.random_dense_packing(100, 2.5, 0.7)
     with pytest.raises(ValueError):
         amorphous.amorphous_halo_profile(g, {"Cu": -1.0})
+
+
+def test_extended_film_has_no_small_angle_oscillations():
+    """The periodic (Faber–Ziman) pair sum has no outer surface: below the first halo the
+    scattering of a-TiO2 falls smoothly with g (a cluster cut from the box, even with the
+    continuum-sphere term subtracted, shows bumps of its rough surface there)."""
+    g = np.linspace(0.2, 3.5, 200)
+    comp = {"Ti": 1 / 3, "O": 2 / 3}
+    intensity = amorphous.amorphous_halo_profile(g, comp, diameter_angstrom=1.95, packing_fraction=0.58, seed=3)
+    assert np.all(np.diff(intensity) < 1e-3 * intensity.max())
+    # and S(g) = I/⟨f⟩² − (⟨f²⟩ − ⟨f⟩²)/⟨f⟩² stays far below 1 there (dense packings are nearly
+    # incompressible)
+    f_ti = amorphous.electron_scattering_factor_angstrom("Ti", g)
+    f_o = amorphous.electron_scattering_factor_angstrom("O", g)
+    mean_f, mean_f2 = (f_ti + 2 * f_o) / 3, (f_ti**2 + 2 * f_o**2) / 3
+    s_of_g = (intensity - (mean_f2 - mean_f**2)) / mean_f**2
+    assert np.all(s_of_g[g > 0.5] < 0.3)
+
+
+def test_periodic_sum_of_an_ideal_gas_is_the_self_term():
+    """Uniform random points (no correlations): S(g) = 1, so I/N = f² within the noise."""
+    rng = np.random.default_rng(5)
+    box, n = 30.0, 3000
+    g = np.linspace(3.0, 12.0, 10)
+    intensity = amorphous.periodic_structure_intensity(rng.uniform(0, box, (n, 3)), box, g, np.ones_like(g))
+    assert np.all(np.abs(intensity - 1.0) < 0.1)
