@@ -9,7 +9,7 @@ one-sample job. A sample whose work raises anything is recorded as failed in its
 the loop goes on with the next one.
 
 The manifest of a batch is a sample sheet (``sample,image,calibration,voltage_kv,note``) with
-absolute image paths, read back with ``ringid.sheets``. This module imports only the standard
+absolute image paths, read back with ``ringid.sheets``; the workflow feeds it on stdin. This module imports only the standard
 library at module level (the workflow imports it when it starts).
 """
 
@@ -38,20 +38,35 @@ def make_batches(sample_ids, batch_size: int) -> dict[str, list[str]]:
     return {f"b{k + 1:0{width}d}": chunk for k, chunk in enumerate(chunks)}
 
 
-def manifest_rows(rows) -> list[tuple[str, str, str, str, str]]:
-    """Manifest lines of sample-sheet rows (``ringid.sheets.SampleRow``), as text.
+def manifest_text(rows) -> str:
+    """The manifest (CSV text) of sample-sheet rows (``ringid.sheets.SampleRow``).
 
     The voltage is written with ``%g``, exactly as the one-sample rule passes it on its command line.
     """
-    return [(r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note)
-            for r in rows]
+    import io
+
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(MANIFEST_COLUMNS)
+    for r in rows:
+        w.writerow([r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note])
+    return buf.getvalue()
 
 
-def write_manifest(path: str | os.PathLike, rows) -> None:
-    """Write a batch manifest (``manifest_rows`` output) atomically."""
-    from .atomic import write_csv
+def read_manifest(manifest: str | os.PathLike, stdin=None) -> list:
+    """The rows (``SampleRow``) of a manifest file, or of the manifest text on ``stdin`` for ``-``."""
+    import tempfile
 
-    write_csv(path, MANIFEST_COLUMNS, [list(r) for r in rows])
+    from .sheets import read_samples
+
+    if str(manifest) != "-":
+        return list(read_samples(manifest).values())
+    text = (stdin or sys.stdin).read()
+    with tempfile.TemporaryDirectory(prefix="ringid-batch-") as tmp:
+        path = os.path.join(tmp, "manifest.csv")
+        with open(path, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        return list(read_samples(path).values())
 
 
 @dataclass(frozen=True)
@@ -64,19 +79,17 @@ class ImageOptions:
     min_ring_g_per_nm: float = 1.0
 
 
-def measure_batch(manifest: str | os.PathLike, calibrations_dir: str, samples_dir: str, options: ImageOptions,
-                  log=sys.stderr) -> list[dict]:
-    """The image job of every sample in ``manifest``, one after another; returns their records.
+def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageOptions, log=sys.stderr) -> list[dict]:
+    """The image job of every sample row (``read_manifest``), one after another; returns their records.
 
     Sample ``s`` is written to ``samples_dir/s`` with the calibration record
     ``calibrations_dir/{calibration}.json``. A sample whose files could not be written at all
     gets ``{"sample": s, "status": "unwritten", "error": ...}`` in the returned list.
     """
     from .measure import _error_text, measure_sample, write_failed_sample
-    from .sheets import read_samples
 
     records = []
-    for row in read_samples(manifest).values():
+    for row in rows:
         out = os.path.join(samples_dir, row.sample)
         t0 = time.perf_counter()
         try:

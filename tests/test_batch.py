@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from conftest import REFERENCE_PHASES, ROOT
-from ringid.batch import ImageOptions, identify_batch, make_batches, manifest_rows, measure_batch, write_manifest
+from ringid.batch import ImageOptions, identify_batch, make_batches, manifest_text, measure_batch, read_manifest
 from ringid.cli import main
 
 K_A_PX = 125.0  # camera constant of the synthetic patterns (Å·px): Au rings at 53–123 px in 256²
@@ -104,8 +104,18 @@ def _manifest(path: Path, inputs, samples) -> Path:
     from ringid.sheets import SampleRow
 
     rows = [SampleRow(s, str(inputs["images"][s]), "known", 200.0, f"note of {s}, with a comma") for s in samples]
-    write_manifest(path, manifest_rows(rows))
+    path.write_text(manifest_text(rows), encoding="utf-8")
     return path
+
+
+def test_manifest_from_stdin_reads_as_from_a_file(inputs, tmp_path):
+    import io
+
+    manifest = _manifest(tmp_path / "m.csv", inputs, ["au_coarse", "broken"])
+    from_file = read_manifest(manifest)
+    assert read_manifest("-", stdin=io.StringIO(manifest.read_text(encoding="utf-8"))) == from_file
+    assert [r.sample for r in from_file] == ["au_coarse", "broken"]
+    assert from_file[0].note == "note of au_coarse, with a comma" and from_file[0].voltage_kv == 200.0
 
 
 def _one_sample_run(inputs, sample: str, out: Path) -> None:
@@ -148,7 +158,7 @@ def test_an_unexpected_exception_fails_only_its_sample(inputs, tmp_path, monkeyp
 
     monkeypatch.setattr(ringid.measure, "measure_sample", failing_for_one)
     manifest = _manifest(tmp_path / "b001.csv", inputs, ["au_fine", "au_coarse"])
-    records = measure_batch(manifest, str(inputs["calibrations"]), str(tmp_path / "out"), ImageOptions())
+    records = measure_batch(read_manifest(manifest), str(inputs["calibrations"]), str(tmp_path / "out"), ImageOptions())
     assert [r["status"] for r in records] == ["failed", "ok"]
     rec = json.loads((tmp_path / "out" / "au_fine" / "sample.json").read_text(encoding="utf-8"))
     assert rec["status"] == "failed" and rec["error"].startswith("internal error (RuntimeError: disk vanished)")
@@ -166,7 +176,7 @@ def test_identification_failures_stay_in_their_sample(inputs, tmp_path):
     samples = ["au_fine", "au_coarse"]
     manifest = _manifest(tmp_path / "b001.csv", inputs, samples)
     out = tmp_path / "out"
-    measure_batch(manifest, str(inputs["calibrations"]), str(out), ImageOptions())
+    measure_batch(read_manifest(manifest), str(inputs["calibrations"]), str(out), ImageOptions())
     shutil.copytree(out / "au_coarse", out / "good")
     (out / "au_fine" / "measured_rings.csv").write_text("radius\n3\n", encoding="utf-8")
     (out / "au_coarse" / "sample.json").write_text("{not json", encoding="utf-8")
@@ -254,15 +264,16 @@ def test_workflow_batch_with_a_bad_image_fails_only_that_sample(workflow):
     bad = rows.pop("bad_empty")
     assert bad["status"] == "failed" and bad["error"].endswith("empty.tif: empty file (0 bytes)"), bad
     assert {r["status"] for r in rows.values()} == {"ok"}
-    # bad_empty sorts into the first batch, with blank_hole and film_as_deposited
-    manifest = (workflow[3] / "batches" / "b001.csv").read_text(encoding="utf-8")
-    assert [ln.split(",")[0] for ln in manifest.splitlines()[1:]] == ["bad_empty", "blank_hole", "film_as_deposited"]
+    # bad_empty sorts into the first batch, with blank_hole and film_as_deposited (one log line each)
+    log = (workflow[3] / "logs" / "batches" / "measure_b001.log").read_text(encoding="utf-8").splitlines()
+    assert len(log) == 3 and "bad_empty: " in log[0] and "(recorded as failed)" in log[0], log
+    assert log[1].startswith("blank_hole: ") and log[2].startswith("film_as_deposited: "), log
 
 
 @pytest.mark.slow
 def test_workflow_batches_rerun_only_where_membership_changed(workflow, tmp_path):
     """With the batch_size 3 results in place: nothing to do; a seventh sample whose id sorts
-    last is a new batch: its manifest, its two jobs and the report run, no other batch."""
+    last is a new batch: its two jobs and the report run, no other batch."""
     import yaml
 
     from test_workflow import job_counts
@@ -282,6 +293,6 @@ def test_workflow_batches_rerun_only_where_membership_changed(workflow, tmp_path
         config["samples"] = str(sheet.parent / "sheet_plus.csv")
         (base / "config.yaml").write_text(yaml.safe_dump(config), encoding="utf-8")
         counts = job_counts(_snakemake(base, "-n").stdout)
-        assert counts == {"batch_manifest": 1, "measure_b003": 1, "identify_b003": 1, "report": 1, "all": 1}, counts
+        assert counts == {"measure_b003": 1, "identify_b003": 1, "report": 1, "all": 1}, counts
     finally:
         (base / "results").rename(base / "results_3")

@@ -1,10 +1,10 @@
 """``ringid batch``: several samples in one process (the workflow's jobs when batch_size > 1).
 
-    ringid batch measure MANIFEST --calibrations-dir DIR -o SAMPLES_DIR [image options]
+    ringid batch measure MANIFEST|- --calibrations-dir DIR -o SAMPLES_DIR [image options]
     ringid batch identify SAMPLE_DIR [SAMPLE_DIR ...] --library LIB
 
 ``measure`` runs the image job of every row of MANIFEST (a sample sheet: sample, image,
-calibration[, voltage_kv, note]) into SAMPLES_DIR/{sample}/; ``identify`` identifies measured
+calibration[, voltage_kv, note]; ``-``: read it from stdin) into SAMPLES_DIR/{sample}/; ``identify`` identifies measured
 sample folders against one loaded library. Each sample's files are those of ``ringid measure``
 and ``ringid identify --sample-dir``; a sample that fails is recorded as failed and the others go
 on. Exit 0 when every sample's files were written (failed samples included).
@@ -18,7 +18,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     sub = parser.add_subparsers(dest="batch_command", metavar="ACTION", required=True)
 
     p = sub.add_parser("measure", help="image job of every sample of a manifest (a sample sheet)")
-    p.add_argument("manifest", metavar="MANIFEST", help="sample sheet CSV: sample,image,calibration[,voltage_kv,note]")
+    p.add_argument("manifest", metavar="MANIFEST", help="sample sheet CSV: sample,image,calibration[,voltage_kv,note]; - reads it from stdin")
     p.add_argument("--calibrations-dir", required=True, metavar="DIR",
                    help="folder of the calibration records, DIR/{calibration}.json (ringid calibration)")
     p.add_argument("-o", "--output", required=True, metavar="SAMPLES_DIR", help="each sample goes to SAMPLES_DIR/{sample}")
@@ -40,11 +40,11 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 
 
 def run_measure(args) -> int:
-    from ..batch import ImageOptions, measure_batch
+    from ..batch import ImageOptions, measure_batch, read_manifest
 
     options = ImageOptions(max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                            min_ring_g_per_nm=args.min_ring_g_per_nm)
-    records = measure_batch(args.manifest, args.calibrations_dir, args.output, options)
+    records = measure_batch(read_manifest(args.manifest), args.calibrations_dir, args.output, options)
     return 1 if any(r["status"] == "unwritten" for r in records) else 0
 
 

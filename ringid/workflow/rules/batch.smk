@@ -2,31 +2,17 @@
 # order, are cut into consecutive batches of batch_size (ringid.batch.make_batches), and each batch
 # is ONE image job and ONE identification job, each running its samples one after another in one
 # interpreter. Per-sample files are exactly those of the one-sample rules.
-# INPUTS: per batch, its manifest (a sample sheet of its rows), images and calibration records
-# OUTPUTS: batches/{batch}.csv; samples/{sample}/... of every sample of the batch
+# INPUTS: per batch, its images and calibration records
+# OUTPUTS: samples/{sample}/... of every sample of the batch
 # A killed batch job is redone whole (--rerun-incomplete); a failed sample is recorded, not raised.
+# The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
+# note, voltage or membership reruns that batch only, and no extra job writes a file for it.
 
-from ringid.batch import make_batches, manifest_rows, write_manifest
+from ringid.batch import make_batches, manifest_text
 from ringid.measure import SAMPLE_FILES
 
 BATCHES = make_batches(SAMPLES, config["batch_size"])
 IDENTIFY_FILES = ("phases.csv", "rings.csv", "identification.json", "overview.png")
-
-
-wildcard_constraints:
-    batch=r"b[0-9]+",
-
-
-rule batch_manifest:
-    output:
-        f"{RESULTS}/batches/{{batch}}.csv",
-    params:
-        # the batch's sheet rows: a changed note, voltage or membership rewrites the manifest,
-        # which reruns that batch only
-        rows=lambda wc: manifest_rows(SAMPLES[s] for s in BATCHES[wc.batch]),
-    localrule: True
-    run:
-        write_manifest(output[0], params.rows)
 
 
 for _batch, _members in BATCHES.items():
@@ -35,7 +21,6 @@ for _batch, _members in BATCHES.items():
         name:
             f"measure_{_batch}"
         input:
-            manifest=f"{RESULTS}/batches/{_batch}.csv",
             images=[SAMPLES[s].image for s in _members],
             calibrations=sorted({f"{RESULTS}/calibrations/{SAMPLES[s].calibration}.json" for s in _members}),
         output:
@@ -45,6 +30,7 @@ for _batch, _members in BATCHES.items():
         benchmark:
             f"{RESULTS}/benchmarks/batches/measure_{_batch}.tsv"
         params:
+            manifest=manifest_text(SAMPLES[s] for s in _members),
             calibrations=f"{RESULTS}/calibrations",
             samples=f"{RESULTS}/samples",
             max_pixels=config.get("image", {}).get("max_pixels", 67108864),
@@ -54,7 +40,7 @@ for _batch, _members in BATCHES.items():
             mem_mb=mem("image"),  # one image at a time: the one-sample figure
             runtime=runtime("image") * len(_members),
         shell:
-            "ringid batch measure {input.manifest:q}"
+            "printf '%s' {params.manifest:q} | ringid batch measure -"
             " --calibrations-dir {params.calibrations:q}"
             " -o {params.samples:q}"
             " --max-pixels {params.max_pixels}"
