@@ -101,3 +101,48 @@ def test_thresholds_have_their_stated_meaning():
     similar = classify([Ring(4.0, 0.01, 0.6, area=1.0), Ring(5.0, 0.01, 0.8, area=1.0)], t)
     assert similar.label == "crystalline" and similar.flags == ("near_amorphous_limit",)
     assert classify([], t).label == "no_signal"
+
+
+def _nano_rings_of(calibrant, diameter_nm, scale, seed=100):
+    """Size-broadened rings (sphere line profile ⊗ instrument) at the d-spacings of one of pyFAI's
+    calibrant tables, areas ∝ 1/g² times a seeded random factor (intensities are not tested)."""
+    from pyFAI.calibrant import get_calibrant
+
+    d = np.asarray(get_calibrant(calibrant).dspacing, float)  # source: pyFAI calibrant tables (Å)
+    g_rings = 10.0 / d
+    g_rings = g_rings[(g_rings > 2.0) & (g_rings < 12.5)]
+    areas = scale * (g_rings[0] / g_rings) ** 2 * np.random.default_rng(seed).uniform(0.3, 1.5, g_rings.size)
+    dx = 0.002
+    x = np.arange(-6, 6 + dx / 2, dx)
+    shape = np.convolve(sphere_line_profile(x, diameter_nm), pseudo_voigt(x, 0, 0.03, 0.5), mode="same") * dx
+    return sum(a * np.interp(G - g0, x, shape) for g0, a in zip(g_rings, areas))
+
+
+def _a_tio2_halo(scale):
+    return scale * amorphous.amorphous_halo_profile(G, {"Ti": 1 / 3, "O": 2 / 3}, diameter_angstrom=1.95,
+                                                    packing_fraction=0.58, n_atoms=1500)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_nanocrystals_on_an_amorphous_film_are_mixed(seed):
+    """CeO2 nanocrystals (6 nm) on amorphous TiO2 whose halo scatters ≈ 45 % of the total: the
+    rings' Lorentzian tails first take the halo (no halo in the residual); the hidden-halo
+    trial finds it."""
+    a = _label(TAIL + _nano_rings_of("CeO2", 6.0, 6.0) + _a_tio2_halo(0.8), seed)
+    assert a.crystallinity.label == "mixed"
+    halo = [r for r in a.rings if r.kind == "halo"]
+    # the first halo of the dense packing: a-TiO2 at ≈ 6 nm⁻¹ (the as-simulated maximum)
+    assert len(halo) == 1 and 5.5 < halo[0].g_per_nm < 6.5
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_nanocrystals_without_a_film_stay_crystalline(seed):
+    a = _label(TAIL + _nano_rings_of("CeO2", 6.0, 6.0), seed)
+    assert a.crystallinity.label == "crystalline"
+
+
+@pytest.mark.xfail(strict=False, reason="known gap: a dense band of unresolved nanocrystal rings (rutile 8 nm, "
+                                        "7.6-10 nm⁻¹) is fitted as a halo and the sample is called mixed")
+def test_dense_nanocrystal_rings_are_not_a_halo():
+    a = _label(TAIL + _nano_rings_of("TiO2", 8.0, 6.0), 1)  # pyFAI's TiO2 table is rutile
+    assert a.crystallinity.label == "crystalline"
