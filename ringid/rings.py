@@ -468,15 +468,20 @@ def _near_rejected(new: Candidate, rejected: list[Candidate]) -> bool:
 
 
 def _weakest_dropped(
-    fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g_range=(-np.inf, np.inf), fwhm_ceiling: float = np.inf
+    fit: _Fit, confirm_sigma: float, fwhm_floor: float = 0.0, g_range=(-np.inf, np.inf), fwhm_ceiling: float = np.inf,
+    misfit_scaled: bool = True,
 ) -> np.ndarray:
     """Keep-mask that drops only the least significant component, if it is below confirm_sigma.
 
     One at a time: components that share one feature are each insignificant while together
     they are not, and dropping all of them at once would lose the feature. A component pressed
     against the narrowest allowed width (sharper than the instrument) counts as insignificant.
+    With ``misfit_scaled`` False the area uncertainty is not inflated by a reduced χ² above 1:
+    while the model is still incomplete (rings not yet found sit in the window), the misfit
+    they cause says nothing about this component.
     """
-    area_sigma = np.sqrt(np.clip(np.diag(fit.cov)[3::4], 0.0, None))
+    cov = fit.cov if misfit_scaled else fit.cov / max(fit.chi2_nu, 1.0)
+    area_sigma = np.sqrt(np.clip(np.diag(cov)[3::4], 0.0, None))
     z = fit.params[:, 3] / np.where(area_sigma > 0, area_sigma, np.inf)
     z = np.where(fit.params[:, 1] <= 1.02 * fwhm_floor, 0.0, z)
     # a narrow-stage component pressed against its widest allowed width is part of a broader
@@ -713,6 +718,9 @@ def _fit_rings(
     rejected: list[Candidate] = []
     settled = True
     converged = True
+    # until the residual search has found every ring, a cluster's window holds rings not yet in
+    # the model, and its misfit must not count against the components being tested
+    model_complete = False
 
     def fit_cluster(members, baseline):
         """Fit one cluster of narrow components on its own window, the rest held fixed.
@@ -740,7 +748,8 @@ def _fit_rings(
                 gw, yw, sw, okw, bw, cands_, fwhm_lo, ring_hi, local_basis(gw), max_nfev=cluster_max_nfev,
                 step=step * stride,
             )
-            keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi)
+            keep_ = _weakest_dropped(fit_, confirm_sigma, fwhm_lo, data_range, fwhm_ceiling=ring_hi,
+                                     misfit_scaled=model_complete)
             if keep_.all():
                 converged = converged and fit_.converged
                 out_ = [
@@ -769,7 +778,7 @@ def _fit_rings(
 
     inv_sigma = np.where(ok, 1.0 / np.where(ok, sigma, 1.0), 0.0)
 
-    def refit(comps_, base, tolerance_sigma=0.1):
+    def refit(comps_, base, tolerance_sigma=0.1, force=False):
         """One sweep over the clusters of comps_; returns (components, number of clusters fitted).
 
         Each cluster is fitted with the others' tails held fixed in its baseline. A cluster
@@ -782,7 +791,7 @@ def _fit_rings(
             members = [comps_[k] for k in grp]
             baseline = base + (total - _curve(g, members))
             win = members[0].fit_window
-            if win is not None and all(m.fit_window == win for m in members):
+            if not force and win is not None and all(m.fit_window == win for m in members):
                 i0, i1 = win
                 if all(
                     np.max(np.abs(baseline[i0:i1] - m.fit_baseline) * inv_sigma[i0:i1], initial=0.0) < tolerance_sigma
@@ -794,11 +803,12 @@ def _fit_rings(
             out.extend(fit_cluster(members, baseline))
         return out, n_fitted
 
-    def settle(comps_, base, max_sweeps=6):
+    def settle(comps_, base, max_sweeps=6, force=False):
         """Sweep over the clusters until no cluster needs refitting (block coordinate descent:
-        the sweeps make the clusters' solutions consistent with each other's tails)."""
-        for _ in range(max_sweeps):
-            comps_, n_fitted = refit(comps_, base)
+        the sweeps make the clusters' solutions consistent with each other's tails); with
+        ``force`` the first sweep refits every cluster."""
+        for sweep in range(max_sweeps):
+            comps_, n_fitted = refit(comps_, base, force=force and sweep == 0)
             if n_fitted == 0:
                 break
         return comps_
@@ -903,6 +913,10 @@ def _fit_rings(
     # cannot tell from a halo: clip the background again from the profile with the fitted
     # rings taken out (dips deeper than 2σ below the first background are misfits, not
     # background, and are floored there), and refit.
+    model_complete = True
+    if background_given:
+        # the significance test with the misfit counted, now that every ring is in
+        comps = settle(comps, background, max_sweeps=2, force=True)
     if comps and not background_given:
         for it in range(background_iterations):
             cleaned = np.maximum(y - _curve(g, comps), background - 2.0 * np.where(ok, sigma, 0.0))
