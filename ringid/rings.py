@@ -19,8 +19,9 @@ resolves them (measured: two equal rings 1.0 FWHM apart are resolved).
 Fitting (:func:`fit_rings`) is bounded least squares (scipy ``least_squares``, trust-region
 reflective, analytic Jacobian, ``x_scale='jac'``) of pseudo-Voigt components
 A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, done cluster by cluster so every
-problem stays small: a cluster is a run of rings within ±1.5 FWHM of each other (at most 6,
-split at the widest gap), fitted on its own window of ±8 FWHM (a Lorentzian keeps 96 % of
+problem stays small: a cluster is a run of rings within ±4 FWHM of each other (rings whose
+windows hold each other's cores are fitted together; measured: half the cluster fits of ±1.5
+FWHM and more of the close rings kept; at most 6, split at the widest gap), fitted on its own window of ±8 FWHM (a Lorentzian keeps 96 % of
 its area inside; narrower windows let the local background trade against the tails) with a
 local linear correction on top of the clipped background; the tails of all other components
 are held fixed in its baseline, and the clusters are swept until no baseline changed by
@@ -676,7 +677,7 @@ def _fit_rings(
     shape_tolerance,
     halo_trial,
     cluster_reach_fwhm=8.0,
-    cluster_link_fwhm=1.5,
+    cluster_link_fwhm=4.0,
     cluster_max_nfev=200,
 ):
     from .background import DEFAULT_WINDOW_PER_NM, estimate_background, valid_mask
