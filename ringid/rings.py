@@ -528,7 +528,8 @@ def fit_rings(
     max_components: int = 60,
     correction_spacing_per_nm: float = 2.0,
     max_new_per_round: int = 8,
-    background_iterations: int = 2,
+    background_iterations: int = 4,
+    background_tolerance_sigma: float = 0.5,
     cleaned_smooth_per_nm: float = 0.2,
     shape_tolerance: float = 0.05,
     halo_trial: bool = True,
@@ -574,6 +575,7 @@ def fit_rings(
         correction_spacing_per_nm=correction_spacing_per_nm,
         max_new_per_round=max_new_per_round,
         background_iterations=background_iterations,
+        background_tolerance_sigma=background_tolerance_sigma,
         cleaned_smooth_per_nm=cleaned_smooth_per_nm,
         shape_tolerance=shape_tolerance,
         halo_trial=halo_trial,
@@ -673,6 +675,7 @@ def _fit_rings(
     correction_spacing_per_nm,
     max_new_per_round,
     background_iterations,
+    background_tolerance_sigma,
     cleaned_smooth_per_nm,
     shape_tolerance,
     halo_trial,
@@ -919,10 +922,17 @@ def _fit_rings(
         # the significance test with the misfit counted, now that every ring is in
         comps = settle(comps, background, max_sweeps=2, force=True)
     if comps and not background_given:
+        # until the background moves by less than background_tolerance_sigma of a bin's σ
+        # (broad Lorentzian rings give back their tails over several rounds; sharp ones at once)
         for it in range(background_iterations):
             cleaned = np.maximum(y - _curve(g, comps), background - 2.0 * np.where(ok, sigma, 0.0))
-            background = estimate_background(g, cleaned, sigma, smooth_per_nm=cleaned_smooth_per_nm)
-            comps = settle(comps, background, max_sweeps=2 if it == background_iterations - 1 else 1)
+            previous, background = background, estimate_background(g, cleaned, sigma,
+                                                                   smooth_per_nm=cleaned_smooth_per_nm)
+            moved = float(np.max(np.abs(background - previous) * inv_sigma, initial=0.0))
+            last = it == background_iterations - 1 or moved < background_tolerance_sigma
+            comps = settle(comps, background, max_sweeps=2 if last else 1)
+            if last:
+                break
 
     # Stage B: broad components (halos) on the residual of the rings, fitted jointly over the
     # whole profile with a smooth background correction, the rings held fixed; then the ring
