@@ -96,10 +96,11 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
             ax.plot(g, profile["model"], color="#e67e22", lw=0.8, label="fit")
         finite = y[np.isfinite(y) & (y > 0)]
         if finite.size:
-            from matplotlib.ticker import NullLocator
+            from matplotlib.ticker import LogFormatter, NullLocator
 
             ax.set_yscale("log")
             ax.yaxis.set_minor_locator(NullLocator())  # decades only (minor log ticks cost half the drawing)
+            ax.yaxis.set_major_formatter(LogFormatter(labelOnlyBase=True))  # plain "100", no mathtext parsing
             lo, hi = np.percentile(finite, 0.5), finite.max()
             ax.set_ylim(lo * 0.8, hi * 1.6)
         ax.set_xlim(g.min(), g.max())
@@ -135,7 +136,7 @@ def _save_small_png(fig, path) -> None:
     fig.set_dpi(100)
     fig.canvas.draw()
     rgba = np.asarray(fig.canvas.buffer_rgba())
-    img = Image.fromarray(rgba[..., :3]).quantize(colors=128, method=Image.Quantize.MEDIANCUT)
+    img = Image.fromarray(rgba[..., :3]).quantize(colors=128, method=Image.Quantize.FASTOCTREE)
     with atomic_path(path, suffix=".png") as tmp:
         img.save(tmp, format="PNG", optimize=True)
 
