@@ -243,6 +243,25 @@ class _MatchedFilter:
         return snr, amp
 
 
+_FILTERS: dict = {}
+
+
+def _matched_filter(weight: np.ndarray, scales_bins: np.ndarray) -> _MatchedFilter:
+    """The filter bank for these weights and scales, reused across the residual rounds of one
+    profile (the kernels and their normalisations depend on σ only; measured: a third of the
+    detection time)."""
+    import hashlib
+
+    key = (hashlib.blake2b(np.ascontiguousarray(weight).tobytes(), digest_size=16).digest(),
+           np.asarray(scales_bins, float).tobytes())
+    filt = _FILTERS.get(key)
+    if filt is None:
+        if len(_FILTERS) >= 4:
+            _FILTERS.pop(next(iter(_FILTERS)))
+        filt = _FILTERS[key] = _MatchedFilter(weight, scales_bins)
+    return filt
+
+
 def _n_resolution_elements(g_range, step, scales_bins):
     return float(sum(g_range / max(s * step * FWHM_PER_SIGMA, step) for s in scales_bins))
 
@@ -288,7 +307,7 @@ def detect_rings(
     weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
     r = np.where(ok, residual, 0.0).astype(float)
     scales = _scales_bins(step, fwhm_min_per_nm, fwhm_max_per_nm)
-    snr, amp = _MatchedFilter(weight, scales).snr_and_amplitude(r * weight)
+    snr, amp = _matched_filter(weight, scales).snr_and_amplitude(r * weight)
     finite = np.isfinite(snr)
     floor = float(np.min(snr[finite])) if finite.any() else 0.0
     finite_snr = np.where(finite, snr, floor)
