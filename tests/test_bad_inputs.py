@@ -446,8 +446,9 @@ def test_workflow_start_lists_every_sheet_problem_and_runs_no_job(sheet_folder):
     ({}, "batch_size=0", "config: batch_size: 0 is less than the minimum of 1"),
     ({}, "batch_size=abc", "config: batch_size: 'abc' is not of type 'integer'"),
     ({"batch_size": 2.5}, None, "config: batch_size: 2.5 is not of type 'integer'"),
+    ({"batch_size": 500}, None, "config: batch_size: 500 is greater than the maximum of 200"),
 ], ids=["unknown key", "wrong type (--config)", "wrong type (config file)", "out of range", "batch_size 0",
-        "batch_size text", "batch_size fraction"])
+        "batch_size text", "batch_size fraction", "batch_size too large"])
 def test_bad_config_is_refused_naming_the_key(sheet_folder, config, override, line):
     _write(sheet_folder / "cal.csv", "calibration,image,standard,voltage_kv\nfilm,cal.tif,Au,200")
     _write(sheet_folder / "samples.csv", "sample,image,calibration\ns1,a.tif,film")
