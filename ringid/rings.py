@@ -961,6 +961,22 @@ def _fit_rings(
             if last:
                 break
 
+    # The complete set must obey the same resolution rule as a residual detection: a component
+    # not resolved from a stronger one (closer than 0.75 of the larger FWHM within a factor 3 in
+    # width, or a shape misfit next to it) is the fit sharing one feature out, and is dropped.
+    def unresolved_dropped(comps_, base):
+        order = sorted(comps_, key=lambda c: -c.params[3])
+        kept, dropped = [], False
+        for c in order:
+            if _resolved_from(c.candidate(), [k.candidate() for k in kept], shape_tolerance):
+                kept.append(c)
+            else:
+                rejected.append(c.candidate())
+                dropped = True
+        return settle(kept, base, max_sweeps=2, force=True) if dropped else comps_
+
+    comps = unresolved_dropped(comps, background)
+
     # Stage B: broad components (halos) on the residual of the rings, fitted jointly over the
     # whole profile with a smooth background correction, the rings held fixed; then the ring
     # clusters are refitted on the background + halos.
@@ -1007,10 +1023,13 @@ def _fit_rings(
             for p, c, k in zip(fit_b.params, cands_b, keep_b)
             if k
         ]
-    if not halos and comps and not background_given and halo_trial:
-        trial = hidden_halo_trial(comps, background, inner, gb, sb, okb, stride_b, basis_b, basis)
+    # (also when the broad stage found only components narrower than a halo, held in the baseline)
+    if (comps and not background_given and halo_trial
+            and not any(h.params[1] >= halo_min_fwhm_per_nm for h in halos)):
+        trial = hidden_halo_trial(comps, background + _curve(g, halos), inner, gb, sb, okb, stride_b, basis_b, basis)
         if trial is not None:
-            halos, comps, correction = trial
+            found, comps, correction = trial
+            halos = halos + found
     if halos:
         base = background + correction + _curve(g, halos)
         comps = settle(comps, base, max_sweeps=2)
