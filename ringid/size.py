@@ -162,6 +162,14 @@ def ring_size(
     hi = float(sample_breadth(fwhm * (1.0 + rel), eta, f_ins, e_ins))
     lo = float(sample_breadth(fwhm * max(1.0 - rel, 1e-3), eta, f_ins, e_ins))
     sigma = 0.5 * (hi - lo)
+    # a ring whose integral breadth is not above the instrument's is as sharp as the instrument,
+    # whatever its shape: the Voigt split of a ring more Gaussian than the instrument would
+    # otherwise find a Gaussian sample part in the shape difference alone
+    beta_ins = float(pseudo_voigt_breadth(f_ins, e_ins))
+    if beta_obs * (1.0 - limit_sigma * rel) <= beta_ins:
+        # sample breadth indistinguishable from 0, to within the ring's disagreement with the
+        # instrument's breadth (a systematic, shape-borne uncertainty)
+        beta_s, sigma = 0.0, max(sigma, abs(beta_ins - beta_obs))
     if beta_s <= limit_sigma * sigma or beta_s <= 0.0:
         upper = beta_s + limit_sigma * max(sigma, 0.0)
         limit = shape_constant / upper if upper > 0 else math.inf

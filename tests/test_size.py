@@ -155,3 +155,11 @@ def test_sample_size_is_weighted_in_breadth_space():
     halo = FittedRing(3.0, 0.01, 1.0, 0.05, 0.5, 5.0, 0.1, "halo", 20.0)
     est2, _ = sample_size(rings + [halo], instrument)
     assert est2.n_rings == 2  # halos do not count
+
+
+def test_ring_more_gaussian_than_the_instrument_at_its_width_gives_a_lower_limit():
+    """A Gaussian ring of the instrument's FWHM has a smaller integral breadth than the pV(η=0.5)
+    instrument (Gaussian β = 1.0645 Γ < pV β; METHODS.md §5): no size, only a lower limit."""
+    instrument = InstrumentProfile(0.05, 0.0, 0.5)
+    s = ring_size(_ring(0.05, eta=0.0, rel_sigma=0.002), instrument)
+    assert s.is_lower_limit and not math.isfinite(s.size_nm)
