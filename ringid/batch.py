@@ -119,7 +119,7 @@ def identify_batch(sample_dirs, library, *, window_standard: float, window_nomin
                    log=sys.stderr) -> list[dict]:
     """The identification of every measured sample folder in ``sample_dirs`` against one loaded
     ``library``; returns the identification records (``status: unwritten`` as in ``measure_batch``)."""
-    from .measure import _error_text, identify_sample, write_failed_identification
+    from .measure import _error_text, identification_summary, identify_sample, write_failed_identification
 
     records = []
     for d in sample_dirs:
@@ -135,7 +135,5 @@ def identify_batch(sample_dirs, library, *, window_standard: float, window_nomin
         if out.get("status") == "unwritten":
             print(f"ringid: error: {d}: could not write the identification files: {out['error']}", file=log, flush=True)
         else:
-            answer = "; ".join(out.get("phases", [])) or (
-                "failed: " + out["error"] if out.get("status") == "failed" else "no phase identified")
-            print(f"{d}: {answer}", file=log, flush=True)
+            print(f"{d}: {identification_summary(out)}", file=log, flush=True)
     return records

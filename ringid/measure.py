@@ -261,6 +261,13 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
 
 
+def identification_summary(out: dict) -> str:
+    """One line of an identification record: the phases, the failure, or that none was found."""
+    if out.get("phases"):
+        return "; ".join(out["phases"])
+    return "failed: " + out.get("error", "") if out.get("status") == "failed" else "no phase identified"
+
+
 def write_failed_identification(sample_dir: str | os.PathLike, exc: BaseException) -> dict:
     """The identification files of a sample whose identification broke (``exc``): empty tables
     and a failed record with its one-line error, as for a sample whose image job failed."""

@@ -14,6 +14,8 @@ from __future__ import annotations
 
 
 def add_parser(subparsers, name: str, help_text: str) -> None:
+    from .measure import add_image_options
+
     parser = subparsers.add_parser(name, help=help_text, description=help_text)
     sub = parser.add_subparsers(dest="batch_command", metavar="ACTION", required=True)
 
@@ -22,11 +24,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--calibrations-dir", required=True, metavar="DIR",
                    help="folder of the calibration records, DIR/{calibration}.json (ringid calibration)")
     p.add_argument("-o", "--output", required=True, metavar="SAMPLES_DIR", help="each sample goes to SAMPLES_DIR/{sample}")
-    p.add_argument("--max-pixels", type=int, metavar="N", help="refuse larger images")
-    p.add_argument("--saturation-level", type=float, metavar="COUNTS", help="mask pixels at or above this level")
-    p.add_argument("--mask", metavar="MASK", help="user mask image (non-zero = excluded)")
-    p.add_argument("--min-ring-g-per-nm", type=float, default=1.0, metavar="G",
-                   help="search rings from this g outwards (default 1.0 1/nm, d <= 10 Å)")
+    add_image_options(p)
     p.set_defaults(func=run_measure)
 
     p = sub.add_parser("identify", help="identification of several measured sample folders")

@@ -40,12 +40,11 @@ def run(args) -> int:
 
     library = load_library(args.library)
     if args.sample_dir:
-        from ..measure import identify_sample
+        from ..measure import identification_summary, identify_sample
 
         out = identify_sample(args.sample_dir, library, window_standard=args.window_standard,
                               window_nominal=args.window_nominal, library_dir=str(args.library))
-        answer = "; ".join(out.get("phases", [])) or ("failed: " + out["error"] if out.get("status") == "failed" else "no phase identified")
-        print(f"{args.sample_dir}: {answer}", file=sys.stderr)
+        print(f"{args.sample_dir}: {identification_summary(out)}", file=sys.stderr)
         return 0
     if not args.rings or not args.output:
         raise RingidError(None, "give RINGS and -o DIR, or --sample-dir DIR")

@@ -12,12 +12,17 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--calibration-id", default="", metavar="ID", help="calibration id, for the record")
     p.add_argument("--note", default="", help="free text carried into the report")
     p.add_argument("--voltage-kv", type=float, default=float("nan"), metavar="V", help="the sample's voltage (checked against the calibration)")
+    add_image_options(p)
+    p.set_defaults(func=run)
+
+
+def add_image_options(p) -> None:
+    """The image-job options, shared with ``ringid batch measure``."""
     p.add_argument("--max-pixels", type=int, metavar="N", help="refuse larger images")
     p.add_argument("--saturation-level", type=float, metavar="COUNTS", help="mask pixels at or above this level")
     p.add_argument("--mask", metavar="MASK", help="user mask image (non-zero = excluded)")
     p.add_argument("--min-ring-g-per-nm", type=float, default=1.0, metavar="G",
                    help="search rings from this g outwards (default 1.0 1/nm, d <= 10 Å; the direct-beam tail is inside)")
-    p.set_defaults(func=run)
 
 
 def run(args) -> int:
