@@ -48,7 +48,8 @@ B. broad components (halos) are searched at the broad scales on the residual and
 Known limit (measured): the clipped background keeps part of the tails of dense, broad rings
 (the re-clipping converges slowly because the rings fitted on it lack those tails): for 21
 CeO2 rings of FWHM 0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +13 / +21 / +5 / +10 % high (at
-0.2 the fitted η is 0–0.3 instead of 0.5); with the true background within 3 %.
+0.2 the fitted η is 0–0.3 instead of 0.5); with the true background within 3 % up to 0.3
+(benchmarks/bench_ring_accuracy.py).
 
 :func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,
 crystallinity and (with a cake) ring character, returning a :class:`RingAnalysis`;
