@@ -848,22 +848,22 @@ def _fit_rings(
     def from_candidates(cands_):
         return [_Component([c.g_per_nm, c.fwhm_per_nm, c.eta, max(c.area, 1e-12)], None, c.snr) for c in cands_]
 
-    def chi2_with_correction(base_, comps_, basis_, use):
+    def chi2_with_correction(base_, comps_, basis_, use) -> float:
         """χ² over the bins ``use`` of base + components + the best smooth correction (hat basis)."""
         rest = np.where(use, y - base_ - _curve(g, comps_), 0.0)
         w = np.where(use, inv_sigma, 0.0)
         coef, *_ = np.linalg.lstsq((basis_ * w).T, rest * w, rcond=None)
-        return float(np.sum(((rest - coef @ basis_) * w) ** 2)), coef @ basis_
+        return float(np.sum(((rest - coef @ basis_) * w) ** 2))
 
     def hidden_halo_trial(comps_, background_, inner_, gb_, sb_, okb_, stride_, basis_b_, basis_):
         """A halo hidden under dense rings, whose Lorentzian tails and local corrections took it.
 
         The residual of such a fit shows no halo (the rings absorbed it), so the candidate is
         searched on the profile minus the background with the ring cores (±1.5 FWHM, at most
-        the median ring's) left out,
-        at halo widths only. The rings and the halo are then fitted in turn (rings on background
-        + halo, halo with the rings held; three rounds), and the halo is kept when it lowers χ² (over the
-        inner bins, each model with its best smooth correction) by more than z² times the
+        the median ring's) left out, at halo widths only. The rings and the halo are then fitted
+        in turn (rings on background + halo, halo with the rings held; three rounds), and the
+        halo is kept when it lowers χ² (over the inner bins, each model with its best smooth
+        correction) by more than z² times the
         reduced χ² of the model without it: the likelihood-ratio form of the detection threshold,
         scaled for the misfit the line shape leaves. Returns (halos, rings, correction) or None.
         """
@@ -883,7 +883,7 @@ def _fit_rings(
         ][:1]
         if not proposals:
             return None
-        chi2_without, _ = chi2_with_correction(background_, comps_, basis_, inner_)
+        chi2_without = chi2_with_correction(background_, comps_, basis_, inner_)
         dof = max(int(inner_.sum()) - 4 * len(comps_) - basis_.shape[0], 1)
         cand, corr_t = proposals[0], np.zeros_like(g)
         halo_t = _Component([cand.g_per_nm, cand.fwhm_per_nm, 0.5, max(cand.area, 1e-12)], None, cand.snr)
@@ -904,7 +904,7 @@ def _fit_rings(
                                                                                data_range).all():
             return None
         rings_t = settle(rings_t, background_ + corr_t + _curve(g, [halo_t]), max_sweeps=1)
-        chi2_with, _ = chi2_with_correction(background_ + _curve(g, [halo_t]), rings_t, basis_, inner_)
+        chi2_with = chi2_with_correction(background_ + _curve(g, [halo_t]), rings_t, basis_, inner_)
         if chi2_without - chi2_with <= z**2 * max(chi2_without / dof, 1.0):
             return None
         return [halo_t], rings_t, corr_t
