@@ -18,3 +18,24 @@ def reference_library(tmp_path_factory):
     out = tmp_path_factory.mktemp("library")
     build_library(REFERENCE_PHASES, out)
     return out
+
+
+def without_timings(obj):
+    """A JSON record with every ``timings_s`` key removed (the only fields allowed to differ
+    between two runs of the same inputs)."""
+    if isinstance(obj, dict):
+        return {k: without_timings(v) for k, v in obj.items() if k != "timings_s"}
+    if isinstance(obj, list):
+        return [without_timings(v) for v in obj]
+    return obj
+
+
+def write_sheet(path, rows, fieldnames=None) -> None:
+    """Write sheet rows (dicts) as CSV with a header."""
+    import csv
+
+    rows = list(rows)
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=fieldnames or list(rows[0]), lineterminator="\n")
+        w.writeheader()
+        w.writerows(rows)

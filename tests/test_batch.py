@@ -18,19 +18,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from conftest import REFERENCE_PHASES, ROOT
+from conftest import REFERENCE_PHASES, ROOT, without_timings, write_sheet
 from ringid.batch import ImageOptions, identify_batch, make_batches, manifest_text, measure_batch, read_manifest
 from ringid.cli import main
 
 K_A_PX = 125.0  # camera constant of the synthetic patterns (Å·px): Au rings at 53–123 px in 256²
-
-
-def _without_timings(obj):
-    if isinstance(obj, dict):
-        return {k: _without_timings(v) for k, v in obj.items() if k != "timings_s"}
-    if isinstance(obj, list):
-        return [_without_timings(v) for v in obj]
-    return obj
 
 
 def _assert_same_folder(a: Path, b: Path) -> int:
@@ -40,7 +32,7 @@ def _assert_same_folder(a: Path, b: Path) -> int:
     for name in names:
         if name.endswith(".json"):
             ja, jb = (json.loads((d / name).read_text(encoding="utf-8")) for d in (a, b))
-            assert _without_timings(ja) == _without_timings(jb), (a, name)
+            assert without_timings(ja) == without_timings(jb), (a, name)
         else:
             assert (a / name).read_bytes() == (b / name).read_bytes(), (a, name)
     return len(names)
@@ -224,10 +216,7 @@ def workflow(tmp_path_factory):
         rows = [r for r in csv.DictReader(fh) if r["sample"] in FAST]
     (base / "demo" / "empty.tif").write_bytes(b"")
     rows.insert(1, {**rows[0], "sample": "bad_empty", "image": "empty.tif", "note": "broken on purpose"})
-    with open(base / "demo" / "sheet.csv", "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
-        w.writeheader()
-        w.writerows(rows)
+    write_sheet(base / "demo" / "sheet.csv", rows)
     phases = base / "phases"
     phases.mkdir()
     for p in PHASES:

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from conftest import REFERENCE_PHASES, ROOT
+from conftest import REFERENCE_PHASES, ROOT, write_sheet
 
 pytestmark = pytest.mark.slow
 
@@ -124,10 +124,7 @@ def inputs(tmp_path_factory):
     subset = [row for row in rows if row["sample"] in SAMPLES]
     assert sorted(row["sample"] for row in subset) == sorted(SAMPLES)
     # Image paths are relative to the sheet's folder: the cut sheet lives beside the original.
-    with open(demo / "subset.csv", "w", newline="", encoding="utf-8") as fh:
-        writer = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
-        writer.writeheader()
-        writer.writerows(subset)
+    write_sheet(demo / "subset.csv", subset, fieldnames=list(rows[0]))
     phases = base / "phases"
     phases.mkdir()
     for phase in PHASES:

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from conftest import REFERENCE_PHASES, ROOT
+from conftest import REFERENCE_PHASES, ROOT, write_sheet
 
 pytestmark = pytest.mark.slow
 
@@ -54,10 +54,7 @@ def run(tmp_path_factory):
     subprocess.run([sys.executable, "-m", "ringid.cli", "demo", str(base / "demo"), "--size-px", "512", "--quiet"], check=True)
     with open(base / "demo" / "samples.csv", newline="") as fh:
         rows = [r for r in csv.DictReader(fh)]
-    with open(base / "demo" / "subset.csv", "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
-        w.writeheader()
-        w.writerows([r for r in rows if r["sample"] in SUBSET])
+    write_sheet(base / "demo" / "subset.csv", [r for r in rows if r["sample"] in SUBSET], fieldnames=list(rows[0]))
     phases = base / "phases"
     shutil.copytree(REFERENCE_PHASES, phases)
     # batch_size 1: one job per sample and stage (the job counts below); batches: tests/test_batch.py
@@ -142,10 +139,7 @@ def test_new_sample_runs_only_that_sample_and_the_report(run):
     rows = read_csv(base / "demo" / "samples.csv")
     extra = [r for r in rows if r["sample"] == "np_CeO2_batch_A"]
     sheet = base / "demo" / "subset_plus.csv"
-    with open(sheet, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
-        w.writeheader()
-        w.writerows([r for r in rows if r["sample"] in SUBSET] + extra)
+    write_sheet(sheet, [r for r in rows if r["sample"] in SUBSET] + extra, fieldnames=list(rows[0]))
     config = [c if not c.startswith("samples=") else f"samples={sheet}" for c in run["config"]]
     counts = job_counts(snakemake("-n", "--config", *config).stdout)
     assert counts == {"measure": 1, "identify": 1, "report": 1, "all": 1}

@@ -29,6 +29,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import without_timings
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -111,14 +112,6 @@ def _run(workdir: Path, *extra: str) -> subprocess.CompletedProcess:
     return subprocess.run(_snakemake_cmd(workdir, *extra), capture_output=True, text=True, timeout=600)
 
 
-def _without_timings(obj):
-    if isinstance(obj, dict):
-        return {k: _without_timings(v) for k, v in obj.items() if k != "timings_s"}
-    if isinstance(obj, list):
-        return [_without_timings(v) for v in obj]
-    return obj
-
-
 def _results_files(results: Path) -> dict[str, Path]:
     """Every CSV and JSON result (logs and Snakemake benchmark tables hold timings only)."""
     out = {}
@@ -138,7 +131,7 @@ def _assert_same_results(a: Path, b: Path) -> int:
         else:
             ja = json.loads(fa[rel].read_text(encoding="utf-8"))
             jb = json.loads(fb[rel].read_text(encoding="utf-8"))
-            assert _without_timings(ja) == _without_timings(jb), rel
+            assert without_timings(ja) == without_timings(jb), rel
     return len(fa)
 
 
