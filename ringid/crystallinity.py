@@ -60,16 +60,20 @@ class Crystallinity:
 def classify(rings, thresholds: CrystallinityThresholds = CrystallinityThresholds(), *, usable: bool = True) -> Crystallinity:
     """Classify a sample from its fitted components (:class:`ringid.model.Ring` list).
 
-    A component is a halo when its FWHM ≥ ``thresholds.halo_min_fwhm_per_nm``.
+    A component is a halo when its FWHM ≥ ``thresholds.halo_min_fwhm_per_nm``, unless the ring
+    stage found it to be an unresolved band of rings (kind "band"; see ``band_misfit_fraction``
+    in :func:`ringid.rings.fit_rings`): a band counts as rings.
     """
     if not usable:
         return Crystallinity("no_signal", 0, 0, float("nan"), ("unusable_profile",))
-    halos = [r for r in rings if r.fwhm_per_nm >= thresholds.halo_min_fwhm_per_nm]
+    halos = [r for r in rings if r.fwhm_per_nm >= thresholds.halo_min_fwhm_per_nm and r.kind != "band"]
     sharp = [r for r in rings if r.fwhm_per_nm < thresholds.halo_min_fwhm_per_nm]
+    bands = [r for r in rings if r.kind == "band" and r.fwhm_per_nm >= thresholds.halo_min_fwhm_per_nm]
     if not halos and not sharp:
         return Crystallinity("no_signal", 0, 0, float("nan"))
     halo_area = sum(max(r.area, 0.0) for r in halos)
-    ring_area = sum(max(r.area, 0.0) for r in sharp)
+    # an unresolved band of rings scatters as rings (its width is not a coherent size)
+    ring_area = sum(max(r.area, 0.0) for r in sharp + bands)
     total = halo_area + ring_area
     fraction = halo_area / total if total > 0 else float("nan")
     flags: list[str] = []

@@ -54,7 +54,8 @@ class Ring:
 
     g in 1/nm with its standard uncertainty; fwhm in 1/nm; eta the pseudo-Voigt
     Lorentzian fraction; area the integrated intensity over g (profile units × 1/nm).
-    kind is ``"ring"`` or ``"halo"``.
+    kind is ``"ring"``, ``"halo"`` or ``"band"`` (a broad component that is many unresolved
+    rings closer than their width, not a halo: left out of identification and size).
     """
 
     g_per_nm: float
