@@ -1285,7 +1285,8 @@ def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
         raise RingidError(path, f"{len(assignments)} assignments given for {n} rings")
     rows = []
     for k, r in enumerate(analysis.rings):
-        s = analysis.ring_sizes[k] if k < len(analysis.ring_sizes) else None
+        # a halo's or a band's breadth is not a crystallite size: no size columns for them
+        s = analysis.ring_sizes[k] if k < len(analysis.ring_sizes) and r.kind == "ring" else None
         c = analysis.characters[k] if k < len(analysis.characters) else None
         phase, hkl = ("", "") if assignments is None or assignments[k] is None else assignments[k]
         rows.append(

@@ -188,3 +188,18 @@ def test_realistic_size_profile_with_the_ceo2_rings():
         assert abs(match[0].g_per_nm - g0) < 5.0 * match[0].g_sigma_per_nm + 1e-4, (g0, match[0])
     assert len(rings) == g_rings.size, found
     assert analysis.crystallinity.label == "crystalline"
+
+
+def test_a_halo_has_no_size_in_rings_csv(tmp_path):
+    """K/β of an amorphous halo is not a crystallite size (it would read as a 0.7 nm crystal)."""
+    rng = np.random.default_rng(4)
+    g = np.arange(1.5, 12.0, 0.01)
+    expected = 300.0 * g**-2.5 + 3.0 * amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200) \
+        + pseudo_voigt(g, 3.2, 0.05, 0.5, 0.5)
+    analysis = analyze_profile(_poisson_profile(expected, rng, 20.0 * g, g), instrument=0.04)
+    path = tmp_path / "rings.csv"
+    write_rings_csv(path, analysis)
+    rows = list(csv.DictReader(open(path)))
+    assert {r["kind"] for r in rows} == {"ring", "halo"}
+    for r in rows:
+        assert (r["size_nm"] == "" and r["size_lower_limit_nm"] == "") == (r["kind"] == "halo")
