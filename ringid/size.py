@@ -185,19 +185,20 @@ def sample_size(
     shape_constant: float = K_SPHERE_DIAMETER,
     limit_sigma: float = 2.0,
 ) -> tuple[SizeEstimate, tuple[RingSize, ...]]:
-    """Per-sample size from all rings of kind "ring" (halos excluded), and the per-ring sizes.
+    """Per-sample size from all rings of kind "ring", and the per-ring sizes (all NaN for a halo
+    or a band: their breadth is not a crystallite size).
 
     The rings are combined in breadth space (where a ring as sharp as the instrument is simply
     β_s ≈ 0 ± σ): weighted mean β̄ = Σ w β_s / Σ w, w = 1/σ², its σ scaled by the Birge ratio
     √χ²_ν when the rings disagree (size differs between hkl: shape, strain). D = K/β̄; a lower
     limit K/(β̄ + limit_sigma·σ) when β̄ is not significant.
     """
-    per_ring = tuple(ring_size(r, instrument, shape_constant=shape_constant, limit_sigma=limit_sigma) for r in rings)
-    use = [
-        s
-        for r, s in zip(rings, per_ring)
-        if r.kind == "ring" and math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0
-    ]
+    no_size = RingSize(math.nan, math.nan, math.nan, math.nan, math.nan)
+    per_ring = tuple(
+        ring_size(r, instrument, shape_constant=shape_constant, limit_sigma=limit_sigma) if r.kind == "ring" else no_size
+        for r in rings
+    )
+    use = [s for s in per_ring if math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0]
     if not use:
         return SizeEstimate(math.nan, math.nan, math.nan, 0, shape_constant), per_ring
     b = np.array([s.breadth_sample_per_nm for s in use])

@@ -120,13 +120,17 @@ def test_close_rings_resolved_at_the_instrumental_width():
         assert abs(r.g_per_nm - g0) < 4 * r.g_sigma_per_nm
 
 
-def test_halo_fitted_as_its_own_component():
-    rng = np.random.default_rng(4)
+def _halo_and_ring_profile():
+    """An a-Si halo (Debye pair sum) with one sharp ring on a steep tail, Poisson noise (seed 4)."""
     g = np.arange(1.5, 12.0, 0.01)
     halo = 3.0 * amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200)
-    tail = 300.0 * g**-2.5
-    expected = tail + halo + pseudo_voigt(g, 3.2, 0.05, 0.5, 0.5)
-    fit = fit_rings(_poisson_profile(expected, rng, 20.0 * g, g), instrument=0.04)
+    expected = 300.0 * g**-2.5 + halo + pseudo_voigt(g, 3.2, 0.05, 0.5, 0.5)
+    return g, halo, _poisson_profile(expected, np.random.default_rng(4), 20.0 * g, g)
+
+
+def test_halo_fitted_as_its_own_component():
+    g, halo, profile = _halo_and_ring_profile()
+    fit = fit_rings(profile, instrument=0.04)
     kinds = {r.kind for r in fit.rings}
     assert kinds == {"ring", "halo"}
     halo_fit = max((r for r in fit.rings if r.kind == "halo"), key=lambda r: r.area)
@@ -192,11 +196,7 @@ def test_realistic_size_profile_with_the_ceo2_rings():
 
 def test_a_halo_has_no_size_in_rings_csv(tmp_path):
     """K/β of an amorphous halo is not a crystallite size (it would read as a 0.7 nm crystal)."""
-    rng = np.random.default_rng(4)
-    g = np.arange(1.5, 12.0, 0.01)
-    expected = 300.0 * g**-2.5 + 3.0 * amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200) \
-        + pseudo_voigt(g, 3.2, 0.05, 0.5, 0.5)
-    analysis = analyze_profile(_poisson_profile(expected, rng, 20.0 * g, g), instrument=0.04)
+    analysis = analyze_profile(_halo_and_ring_profile()[2], instrument=0.04)
     path = tmp_path / "rings.csv"
     write_rings_csv(path, analysis)
     rows = list(csv.DictReader(open(path)))

@@ -153,8 +153,9 @@ def test_sample_size_is_weighted_in_breadth_space():
     assert est.size_nm == pytest.approx(per_ring[0].size_nm, rel=1e-6)  # identical rings
     assert est.size_sigma_nm < per_ring[0].size_sigma_nm
     halo = FittedRing(3.0, 0.01, 1.0, 0.05, 0.5, 5.0, 0.1, "halo", 20.0)
-    est2, _ = sample_size(rings + [halo], instrument)
+    est2, per_ring2 = sample_size(rings + [halo], instrument)
     assert est2.n_rings == 2  # halos do not count
+    assert math.isnan(per_ring2[2].size_nm) and math.isnan(per_ring2[2].lower_limit_nm)  # nor have a size
 
 
 def test_ring_more_gaussian_than_the_instrument_at_its_width_gives_a_lower_limit():
