@@ -10,7 +10,9 @@
    the estimated background and with the true one.
 3. Crystallinity of nanocrystal rings (sphere line profile ⊗ instrument) at the d-spacings of
    pyFAI's CeO2, TiO2 (rutile) and alpha_Al2O3 tables, without and with an a-TiO2 halo
-   (Faber–Ziman pair sum, ``ringid.amorphous``): the labels over two seeds.
+   (Faber–Ziman pair sum, ``ringid.amorphous``): the labels over two seeds, and under every
+   broad component (halo or unresolved band) the model's χ²_ν and residual beyond the noise as
+   a fraction of the signal; the same for real halos (a-Si + Au rings, a-Si, a-CuZr).
 """
 
 from __future__ import annotations
@@ -68,16 +70,42 @@ def dense_size_bias() -> None:
               f"true background {np.nanmean(known):.3f}")
 
 
+def _broad_misfits(a, profile) -> list[str]:
+    """χ²_ν and residual/signal under each broad component of an analysis (ringid.rings.misfit_under)."""
+    from ringid.background import valid_mask
+    from ringid.rings import misfit_under
+
+    ok = valid_mask(profile.intensity, profile.sigma)
+    out = []
+    for r in a.rings:
+        if r.kind in ("halo", "band"):
+            chi2, n, fraction = misfit_under(profile.g_per_nm, profile.intensity, profile.sigma, ok, a.background,
+                                             a.model, r.g_per_nm, r.fwhm_per_nm)
+            out.append(f"{r.kind} {r.g_per_nm:.2f}: χ²_ν {chi2 / n:.1f}, {100 * fraction:.0f} %")
+    return out
+
+
 def nanocrystal_labels() -> None:
-    from test_crystallinity import TAIL, _a_tio2_halo, _label, _nano_rings_of
+    from test_crystallinity import INSTRUMENT, TAIL, _a_tio2_halo, _halo, _nano_rings_of, _profile, _sharp_rings
+
+    from ringid.rings import analyze_profile
+
+    def run(expected, seed):
+        profile = _profile(expected, seed)
+        a = analyze_profile(profile, instrument=INSTRUMENT)
+        return f"{a.crystallinity.label} {_broad_misfits(a, profile)}"
 
     halo = _a_tio2_halo(0.8)
     for table in ("CeO2", "TiO2", "alpha_Al2O3"):
         for diameter in (4.0, 6.0, 8.0):
             rings = _nano_rings_of(table, diameter, 6.0)
-            plain = [_label(TAIL + rings, s).crystallinity.label for s in (1, 2)]
-            with_halo = [_label(TAIL + rings + halo, s).crystallinity.label for s in (1, 2)]
-            print(f"{table:12s} {diameter:.0f} nm: no halo {plain}, with a-TiO2 halo {with_halo}")
+            for name, expected in (("no halo", TAIL + rings), ("with a-TiO2 halo", TAIL + rings + halo)):
+                for seed in (1, 2):
+                    print(f"{table:12s} {diameter:.0f} nm, {name}, seed {seed}: {run(expected, seed)}")
+    for name, expected in (("a-Si + Au rings", TAIL + _halo(0.3) + _sharp_rings(1.0)), ("a-Si", TAIL + _halo(0.3)),
+                           ("a-CuZr", TAIL + _halo(0.3, {"Cu": 0.5, "Zr": 0.5}, 2.8))):
+        for seed in (1, 2):
+            print(f"{name}, seed {seed}: {run(expected, seed)}")
 
 
 if __name__ == "__main__":
