@@ -8,7 +8,10 @@
    14.5 nm⁻¹ as pseudo-Voigts (η = 0.5) of FWHM 0.1–0.6 nm⁻¹ on a steep tail, instrument
    pV(0.06 nm⁻¹, η = 0.5): size found / size of a perfect fit (the same instrument removal), with
    the estimated background and with the true one.
-3. Crystallinity of nanocrystal rings (sphere line profile ⊗ instrument) at the d-spacings of
+3. Scherrer sizes on the four-ring profiles of tests/test_size.py (Lorentzian size broadening and
+   the physical sphere line profile, each ⊗ the instrument) over ten noise seeds: mean and spread
+   of D found / D − 1, and of the pulls (D found − D) / σ_D.
+4. Crystallinity of nanocrystal rings (sphere line profile ⊗ instrument) at the d-spacings of
    pyFAI's CeO2, TiO2 (rutile) and alpha_Al2O3 tables, without and with an a-TiO2 halo
    (Faber–Ziman pair sum, ``ringid.amorphous``): the labels over two seeds, and under every
    broad component (halo or unresolved band) the model's χ²_ν and residual beyond the noise as
@@ -70,6 +73,25 @@ def dense_size_bias() -> None:
               f"true background {np.nanmean(known):.3f}")
 
 
+def scherrer_bias(seeds: int = 10) -> None:
+    from test_size import _lorentzian_size, _size_profile, sphere_line_profile
+
+    from ringid.rings import analyze_profile
+    from ringid.size import InstrumentProfile
+
+    inst = InstrumentProfile(0.03, 0.0, 0.5)  # the profiles of tests/test_size.py
+    for name, shape in (("Lorentzian", _lorentzian_size), ("sphere", sphere_line_profile)):
+        for diameter in (3.0, 5.0, 10.0, 20.0, 30.0):
+            ratio, pull = [], []
+            for seed in range(seeds):
+                size = analyze_profile(_size_profile(diameter, inst, np.random.default_rng(100 + seed), shape),
+                                       instrument=inst).size
+                ratio.append(size.size_nm / diameter - 1.0)
+                pull.append((size.size_nm - diameter) / size.size_sigma_nm)
+            print(f"Scherrer, {name} {diameter:.0f} nm: D {100 * np.mean(ratio):+.1f} % (sd {100 * np.std(ratio):.1f} %), "
+                  f"pull mean {np.mean(pull):+.1f}, sd {np.std(pull):.1f} ({seeds} seeds)")
+
+
 def _broad_misfits(a, profile) -> list[str]:
     """χ²_ν and residual/signal under each broad component of an analysis (ringid.rings.misfit_under)."""
     from ringid.background import valid_mask
@@ -110,5 +132,6 @@ def nanocrystal_labels() -> None:
 
 if __name__ == "__main__":
     thirty_rings()
+    scherrer_bias()
     dense_size_bias()
     nanocrystal_labels()
