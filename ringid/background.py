@@ -18,6 +18,20 @@ pitfall). A light moving-average pre-smoothing (Morháč et al. 1997, Nucl. Inst
 
 The effective-counts scale: for Poisson data the ratio y/σ² is the number of pixels averaged per
 bin, so n = y · median(y/σ²) is in counts and the LLS operator acts on the scale it was made for.
+
+Clipping about a trend. SNIP's chord test cannot see a feature that lies below the chord of a
+convex background: on a tail of curvature c (LLS scale) anything lower than about c·p²/2 over a
+window p survives. The far Lorentzian tails of broad rings (nanocrystals: FWHM 0.3 nm⁻¹ and
+more) are of that kind on the steep inner part of the profile, so plain SNIP keeps them as a
+bump under the rings, and a ring fit on that background comes out too narrow (measured: sizes of
+3 nm crystals +13 %; benchmarks/bench_ring_accuracy.py). The clipping is therefore repeated on
+the profile minus a smooth trend of the clipped background (cubic Savitzky–Golay smoothing over
+±``trend_half_width_ln_g`` in ln g, scipy ``savgol_filter``; ±0.5 spans g/1.65 … 1.65 g, much
+wider than the bump at g ≳ 3 nm⁻¹ yet able to follow the tail's curvature near the central beam),
+where the chord test has next to no curvature allowance: the bump is clipped, the tail kept
+(measured on the same profiles: +5 % at 3 nm). The price is a larger clipping-to-noise bias
+(median −1.8 σ of a bin on a noisy tail, against −1.1 σ without the trend), which the ring
+fit's smooth corrections take up.
 """
 
 from __future__ import annotations
@@ -25,6 +39,8 @@ from __future__ import annotations
 import numpy as np
 
 DEFAULT_WINDOW_PER_NM = 2.0
+DEFAULT_TREND_HALF_WIDTH_LN_G = 0.5
+TREND_ITERATIONS = 2
 
 
 def lls(y):
@@ -64,6 +80,25 @@ def _moving_average_linear_ends(values: np.ndarray, width: int) -> np.ndarray:
     return np.convolve(padded, kernel, mode="valid")
 
 
+def log_g_trend(g_per_nm, values, half_width_ln_g: float, order: int = 3) -> np.ndarray:
+    """Savitzky–Golay smoothing (scipy, polynomial ``order``) of ``values`` over ±half_width in ln g.
+
+    The values are resampled onto a uniform ln g grid of as many points, smoothed, and
+    interpolated back; g ≤ 0 is taken as half a bin.
+    """
+    from scipy.signal import savgol_filter
+
+    g = np.asarray(g_per_nm, dtype=float)
+    step = float(np.median(np.diff(g)))
+    x = np.log(np.maximum(g, 0.5 * step))
+    xu = np.linspace(x[0], x[-1], g.size)
+    half = max(order + 1, int(round(half_width_ln_g / (xu[1] - xu[0]))))
+    n_window = min(2 * half + 1, g.size if g.size % 2 else g.size - 1)
+    if n_window <= order:
+        return np.asarray(values, dtype=float).copy()
+    return np.interp(x, xu, savgol_filter(np.interp(xu, x, values), n_window, order, mode="interp"))
+
+
 def valid_mask(intensity, sigma) -> np.ndarray:
     """Bins with a finite intensity and a finite, positive uncertainty."""
     intensity = np.asarray(intensity, dtype=float)
@@ -78,6 +113,7 @@ def estimate_background(
     *,
     window_per_nm: float = DEFAULT_WINDOW_PER_NM,
     smooth_per_nm: float | None = None,
+    trend_half_width_ln_g: float | None = DEFAULT_TREND_HALF_WIDTH_LN_G,
 ) -> np.ndarray:
     """SNIP background (LLS scale) of a 1D profile, in the profile's intensity units.
 
@@ -87,6 +123,8 @@ def estimate_background(
         are ignored (filled by interpolation for the clipping).
     window_per_nm : largest clipping half-width in 1/nm; must exceed the widest halo FWHM.
     smooth_per_nm : pre-smoothing moving-average width in 1/nm (default 3 bins).
+    trend_half_width_ln_g : half-width (in ln g) of the trend the clipping is repeated about;
+        None for plain SNIP.
 
     Returns
     -------
@@ -111,5 +149,10 @@ def estimate_background(
     if smooth_bins > 1:
         values = _moving_average_linear_ends(values, smooth_bins)
     window_bins = max(1, int(round(window_per_nm / step)))
-    background_counts = lls_inverse(snip(values, window_bins))
+    clipped = snip(values, window_bins)
+    if trend_half_width_ln_g:
+        for _ in range(TREND_ITERATIONS):
+            trend = log_g_trend(g, clipped, trend_half_width_ln_g)
+            clipped = snip(values - trend, window_bins) + trend
+    background_counts = lls_inverse(clipped)
     return np.clip(background_counts, 0.0, None) / gain

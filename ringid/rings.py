@@ -53,10 +53,9 @@ the component is reported as an unresolved band of rings (kind "band"), which co
 Measured (rutile 4–8 nm, corundum 4–6 nm; benchmarks/bench_ring_accuracy.py): χ²_ν 11–65 and 18–48 % under such bands,
 χ²_ν 0.9–2.3 and 0–8 % under real halos (except one taken only in part: 6 and 14 %).
 
-Known limit (measured): the clipped background keeps part of the tails of dense, broad rings
-(the re-clipping converges slowly because the rings fitted on it lack those tails): for 21
-CeO2 rings of FWHM 0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +13 / +21 / +5 / +10 % high (at
-0.2 the fitted η is 0–0.3 instead of 0.5); with the true background within 3 % up to 0.3
+Known limit (measured): dense broad rings merge into blends. For 21 CeO2 rings of FWHM 0.1 /
+0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +0 / +4 / +10 / +14 / +39 % high, and with the true
+background +0 / −0 / −3 / +30 / +45 %: beyond 0.3 nm⁻¹ no fit of separate rings recovers them
 (benchmarks/bench_ring_accuracy.py).
 
 :func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,

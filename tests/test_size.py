@@ -107,12 +107,7 @@ def _lorentzian_size(x, diameter_nm):
     return pseudo_voigt(x, 0.0, 2 * beta / math.pi, 1.0)
 
 
-@pytest.mark.parametrize("diameter_nm", [
-    pytest.param(3.0, marks=pytest.mark.xfail(reason=(
-        "known limit: at 3 nm (FWHM 0.28 nm⁻¹) the clusters' local linear corrections take part of the "
-        "Lorentzian tails and the re-clipped background keeps them; D +11 % (this seed; +13 % over ten "
-        "seeds, −0.2 % with the true background: benchmarks/bench_ring_accuracy.py)"), strict=False)),
-    5.0, 10.0, 20.0, 30.0])
+@pytest.mark.parametrize("diameter_nm", [3.0, 5.0, 10.0, 20.0, 30.0])
 def test_scherrer_size_back_within_10_percent(diameter_nm):
     """Size broadening of integral breadth K/D (Lorentzian), instrument pV 0.03 nm⁻¹, Poisson noise."""
     instrument = InstrumentProfile(0.03, 0.0, 0.5)
