@@ -50,11 +50,11 @@ their width they merge into a broad feature that stage B fits as a halo, but the
 on it that a smooth halo cannot describe. When χ² under the halo (±FWHM) is above its 1 − α
 quantile and the residual beyond the noise is more than ``band_misfit_fraction`` of the signal,
 the component is reported as an unresolved band of rings (kind "band"), which counts as rings.
-Measured (rutile 4–8 nm, corundum 4–6 nm; benchmarks/bench_ring_accuracy.py): χ²_ν 11–65 and 18–48 % under such bands,
-χ²_ν 0.9–2.3 and 0–8 % under real halos (except one taken only in part: 6 and 14 %).
+Measured (rutile 4–8 nm, corundum 4–6 nm; benchmarks/bench_ring_accuracy.py): χ²_ν 14–65 and 19–47 % under such bands,
+χ²_ν 0.9–4.1 and 0–9 % under real halos (except one taken only in part: 5.5–5.6 and 13 %).
 
 Known limit (measured): dense broad rings merge into blends. For 21 CeO2 rings of FWHM 0.1 /
-0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +0 / +4 / +10 / +14 / +39 % high, and with the true
+0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +0 / +3 / +9 / +10 / +28 % high, and with the true
 background +0 / −0 / −3 / +30 / +45 %: beyond 0.3 nm⁻¹ no fit of separate rings recovers them
 (benchmarks/bench_ring_accuracy.py).
 
