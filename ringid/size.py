@@ -22,7 +22,11 @@ integral breadth of the Voigt (β_L,s, β_G,s): β = β_G / erfcx(k), k = β_L/(
 
 Honest limits: when the sample breadth is not larger than ``limit_sigma`` times its uncertainty
 the ring is as sharp as the instrument, and only a lower limit D > K/(β_s + limit_sigma·σ) is
-reported. Without an instrument width nothing is removed and K/β_obs is itself a lower limit.
+reported. A sample breadth below ``RESOLUTION_FRACTION`` of the instrumental breadth is not told
+apart from the instrument however precise the fit (the calibration film and the sample see the
+instrument on different days, at different heights, with the standard's own grain size in it), so
+the limit is at most K/(RESOLUTION_FRACTION·β_instr) (with a 0.05 nm⁻¹ Gaussian instrument:
+> 250 nm). Without an instrument width nothing is removed and K/β_obs is itself a lower limit.
 """
 
 from __future__ import annotations
@@ -33,6 +37,10 @@ from dataclasses import dataclass
 import numpy as np
 
 K_SPHERE_DIAMETER = 4.0 / 3.0  # Langford & Wilson 1978: sphere diameter, integral breadth
+# smallest sample breadth resolved, as a fraction of the instrumental breadth (common practice,
+# not from a source: line-broadening sizes are not trusted where the broadening is below about a
+# tenth of the instrument's)
+RESOLUTION_FRACTION = 0.1
 PHI_LORENTZ = 2.0 / math.pi  # FWHM/β of a Lorentzian
 PHI_GAUSS = 2.0 * math.sqrt(math.log(2.0) / math.pi)  # FWHM/β of a Gaussian
 
@@ -61,6 +69,10 @@ class RingSize:
     lower_limit_nm: float
     breadth_sample_per_nm: float
     breadth_sample_sigma_per_nm: float
+    # observed minus instrumental integral breadth (1/nm), signed, and its σ: an unbiased test
+    # of "broader than the instrument" where the sample breadth itself is clipped at 0
+    breadth_excess_per_nm: float = math.nan
+    breadth_excess_sigma_per_nm: float = math.nan
 
     @property
     def is_lower_limit(self) -> bool:
@@ -166,16 +178,31 @@ def ring_size(
     # whatever its shape: the Voigt split of a ring more Gaussian than the instrument would
     # otherwise find a Gaussian sample part in the shape difference alone
     beta_ins = float(pseudo_voigt_breadth(f_ins, e_ins))
+    excess = (beta_obs - beta_ins, beta_obs * rel)
     if beta_obs * (1.0 - limit_sigma * rel) <= beta_ins:
         # sample breadth indistinguishable from 0, to within the ring's disagreement with the
         # instrument's breadth (a systematic, shape-borne uncertainty)
         beta_s, sigma = 0.0, max(sigma, abs(beta_ins - beta_obs))
-    if beta_s <= limit_sigma * sigma or beta_s <= 0.0:
-        upper = beta_s + limit_sigma * max(sigma, 0.0)
+    floor = RESOLUTION_FRACTION * beta_ins
+    if beta_s <= limit_sigma * sigma or beta_s <= floor:
+        upper = max(beta_s + limit_sigma * max(sigma, 0.0), floor)
         limit = shape_constant / upper if upper > 0 else math.inf
-        return RingSize(math.nan, math.nan, limit, beta_s, sigma)
+        return RingSize(math.nan, math.nan, limit, beta_s, sigma, *excess)
     size = shape_constant / beta_s
-    return RingSize(size, size * sigma / beta_s, math.nan, beta_s, sigma)
+    return RingSize(size, size * sigma / beta_s, math.nan, beta_s, sigma, *excess)
+
+
+def _weighted_mean(values, sigmas) -> tuple[float, float]:
+    """Inverse-variance weighted mean and its σ, scaled by the Birge ratio √χ²_ν when the values
+    disagree beyond their σ."""
+    values, sigmas = np.asarray(values, dtype=float), np.asarray(sigmas, dtype=float)
+    w = 1.0 / sigmas**2
+    mean = float(np.sum(w * values) / np.sum(w))
+    sigma = float(1.0 / math.sqrt(np.sum(w)))
+    if values.size > 1:
+        chi2_nu = float(np.sum(w * (values - mean) ** 2) / (values.size - 1))
+        sigma *= math.sqrt(max(chi2_nu, 1.0))
+    return mean, sigma
 
 
 def sample_size(
@@ -191,28 +218,34 @@ def sample_size(
     The rings are combined in breadth space (where a ring as sharp as the instrument is simply
     β_s ≈ 0 ± σ): weighted mean β̄ = Σ w β_s / Σ w, w = 1/σ², its σ scaled by the Birge ratio
     √χ²_ν when the rings disagree (size differs between hkl: shape, strain). D = K/β̄; a lower
-    limit K/(β̄ + limit_sigma·σ) when β̄ is not significant.
+    limit K/(β̄ + limit_sigma·σ) when β̄ is not significant, or when the rings are not
+    significantly broader than the instrument: the same mean taken over the signed excess
+    β_obs − β_ins (each ring's β_s is ≥ 0 by construction, so over many instrument-sharp rings
+    their mean would come out positive, and "significant", from noise alone).
     """
+    rings = tuple(rings)
     no_size = RingSize(math.nan, math.nan, math.nan, math.nan, math.nan)
     per_ring = tuple(
         ring_size(r, instrument, shape_constant=shape_constant, limit_sigma=limit_sigma) if r.kind == "ring" else no_size
         for r in rings
     )
-    use = [s for s in per_ring if math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0]
+    used = [k for k, s in enumerate(per_ring) if math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0]
+    use = [per_ring[k] for k in used]
     if not use:
         return SizeEstimate(math.nan, math.nan, math.nan, 0, shape_constant), per_ring
-    b = np.array([s.breadth_sample_per_nm for s in use])
-    sd = np.array([s.breadth_sample_sigma_per_nm for s in use])
-    w = 1.0 / sd**2
-    mean = float(np.sum(w * b) / np.sum(w))
-    sigma = float(1.0 / math.sqrt(np.sum(w)))
-    if len(use) > 1:
-        chi2_nu = float(np.sum(w * (b - mean) ** 2) / (len(use) - 1))
-        sigma *= math.sqrt(max(chi2_nu, 1.0))
+    mean, sigma = _weighted_mean([s.breadth_sample_per_nm for s in use], [s.breadth_sample_sigma_per_nm for s in use])
     if instrument is None:
         return SizeEstimate(math.nan, math.nan, shape_constant / (mean + limit_sigma * sigma), len(use), shape_constant), per_ring
-    if mean <= limit_sigma * sigma:
-        upper = mean + limit_sigma * sigma
+    excess = [(s.breadth_excess_per_nm, s.breadth_excess_sigma_per_nm) for s in use
+              if math.isfinite(s.breadth_excess_per_nm) and s.breadth_excess_sigma_per_nm > 0]
+    sharp = False
+    if excess:
+        mean_excess, sigma_excess = _weighted_mean(*zip(*excess))
+        sharp = mean_excess <= limit_sigma * sigma_excess
+    g_used = np.array([rings[k].g_per_nm for k in used], dtype=float)
+    floor = RESOLUTION_FRACTION * float(np.mean(pseudo_voigt_breadth(instrument.fwhm_per_nm(g_used), instrument.eta)))
+    if sharp or mean <= limit_sigma * sigma or mean <= floor:
+        upper = max(mean + limit_sigma * sigma, floor)
         return SizeEstimate(math.nan, math.nan, shape_constant / upper, len(use), shape_constant), per_ring
     size = shape_constant / mean
     return SizeEstimate(size, size * sigma / mean, math.nan, len(use), shape_constant), per_ring
