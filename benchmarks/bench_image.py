@@ -213,7 +213,7 @@ def run_case(case, size: int) -> dict:
     prof = integrate_profile(simg, smasks.mask, sg, with_cake=False)
     g_true = 10.0 / d_al
     visible = g_true < prof.g_per_nm.max() * 0.98
-    _, g_fit = fit_ring_widths(prof, g_true[visible], np.full(visible.sum(), 0.06))
+    _, g_fit, _ = fit_ring_widths(prof, g_true[visible], np.full(visible.sum(), 0.06))
     rel = np.abs(g_fit / g_true[visible] - 1)
     row["sample_center_err_px"] = math.hypot(sg.center_x_px - scx, sg.center_y_px - scy)
     row["sample_d_err_median"] = float(np.nanmedian(rel))

@@ -72,6 +72,7 @@ class Calibration:
     standard: str = ""
     standard_source: str = ""
     image: str = ""
+    instrument_eta: float = 0.5  # pseudo-Voigt mixing η of the standard's rings (median)
     flags: tuple[str, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
 
@@ -116,9 +117,11 @@ class Calibration:
                                                 self.ring_g_sigma_per_nm, resid, self.ring_fwhm_per_nm)
             ],
             "instrument_fwhm": {
-                "model": "fwhm_per_nm = c0_per_nm + c1 * g_per_nm (pseudo-Voigt FWHM of the standard's rings)",
+                "model": "fwhm_per_nm = c0_per_nm + c1 * g_per_nm (pseudo-Voigt FWHM of the standard's rings); "
+                         "eta: their median pseudo-Voigt mixing",
                 "c0_per_nm": self.fwhm_c0_per_nm,
                 "c1": self.fwhm_c1,
+                "eta": self.instrument_eta,
                 "g_min_per_nm": float(np.min(self.ring_g_obs_per_nm)),
                 "g_max_per_nm": float(np.max(self.ring_g_obs_per_nm)),
             },
@@ -281,7 +284,7 @@ def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
     """Pseudo-Voigt FWHM (1/nm) and position of each ring in a 1D profile, on a local linear background.
 
     Windows are ±3 FWHM around each ring, cut half-way to a neighbour. Returns
-    (fwhm, g_fit) arrays with NaN where a fit failed.
+    (fwhm, g_fit, eta) arrays with NaN where a fit failed.
     """
     from scipy.optimize import curve_fit
 
@@ -292,6 +295,7 @@ def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
     order = np.argsort(centers)
     fwhm_out = np.full(centers.size, np.nan)
     g_out = np.full(centers.size, np.nan)
+    eta_out = np.full(centers.size, np.nan)
     for rank, i in enumerate(order):
         g0, w0 = centers[i], max(float(fwhm_guess_per_nm[i]), 2 * (g_all[1] - g_all[0]))
         half = 3.0 * w0
@@ -320,7 +324,8 @@ def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
         if abs(popt[1] - g0) < half and 0 < abs(popt[2]) < 2 * half:
             fwhm_out[i] = abs(popt[2])
             g_out[i] = popt[1]
-    return fwhm_out, g_out
+            eta_out[i] = popt[3]
+    return fwhm_out, g_out, eta_out
 
 
 def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angstrom, *, voltage_kv: float,
@@ -385,8 +390,9 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
 
     profile = integrate_profile(data, mask, geom, with_cake=False)
     fwhm_guess = gfit.ring_fwhm_px[obs] * 10.0 / k
-    fwhm, _ = fit_ring_widths(profile, g_obs, fwhm_guess)
+    fwhm, _, eta = fit_ring_widths(profile, g_obs, fwhm_guess)
     c0, c1 = _fit_fwhm_line(g_obs, fwhm)
+    instrument_eta = float(np.nanmedian(eta)) if np.isfinite(eta).any() else 0.5
     flags = list(gfit.flags)
     notes = [f"{n_assigned} of {radii.size} rings assigned; {int((~keep).sum())} of {keep.size} sector points "
              f"rejected as outliers"]
@@ -400,7 +406,8 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
         ring_d_calc_angstrom=d_std[assignment.standard_index][order], ring_g_obs_per_nm=g_obs[order],
         ring_g_sigma_per_nm=g_sig[order], ring_fwhm_per_nm=fwhm[order], fwhm_c0_per_nm=c0, fwhm_c1=c1,
         unassigned_g_per_nm=10.0 * radii[assignment.unassigned_observed] / k, standard=standard,
-        standard_source=standard_source, image="" if path is None else os.fspath(path), flags=tuple(flags),
+        standard_source=standard_source, image="" if path is None else os.fspath(path),
+        instrument_eta=instrument_eta, flags=tuple(flags),
         notes=tuple(notes))
 
 

@@ -80,14 +80,16 @@ def trim_profile(profile, min_g_per_nm: float):
 
 
 def instrument_from_record(rec: dict):
-    """The instrumental ring profile of a calibration, or None when it was not measured."""
+    """The instrumental ring profile of a calibration, or None when it was not measured (η 0.5
+    when the record predates its measurement)."""
     from .size import InstrumentProfile
 
     inst = rec.get("instrument_fwhm") or {}
-    c0, c1 = inst.get("c0_per_nm"), inst.get("c1")
+    c0, c1, eta = inst.get("c0_per_nm"), inst.get("c1"), inst.get("eta", 0.5)
     if c0 is None or c1 is None or not math.isfinite(float(c0)):
         return None
-    return InstrumentProfile(float(c0), float(c1))
+    eta = float(eta) if eta is not None and math.isfinite(float(eta)) else 0.5
+    return InstrumentProfile(float(c0), float(c1), min(max(eta, 0.0), 1.0))
 
 
 def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike, out_dir: str | os.PathLike, *,

@@ -60,6 +60,8 @@ def test_camera_constant_from_au_standard(au, nominal_factor):
     assert np.all(np.abs(cal.ring_g_obs_per_nm / cal.ring_g_calc_per_nm - 1) < 1e-3)
     # instrumental width: the simulator's Gaussian 0.05 1/nm (pixel sampling adds a little)
     assert cal.instrument_fwhm_per_nm(5.0) == pytest.approx(0.05, rel=0.1)
+    # and its shape: the simulator's instrument is Gaussian (η = 0)
+    assert cal.instrument_eta < 0.15
 
 
 def test_silicon_standard_and_record_round_trip(tmp_path):
@@ -82,6 +84,14 @@ def test_silicon_standard_and_record_round_trip(tmp_path):
     assert rec["camera_length_mm"] == pytest.approx(cal.geometry.camera_constant_A_px * 14e-3 / 0.019687, rel=1e-4)
     geom, _ = read_calibration(out)
     assert geom.camera_constant_A_px == cal.geometry.camera_constant_A_px and geom.voltage_kv == 300.0
+    # the instrumental ring profile the sample stage reads back: width line and shape
+    from ringid.measure import instrument_from_record
+
+    inst = instrument_from_record(rec)
+    assert inst.fwhm_per_nm(5.0) == pytest.approx(cal.instrument_fwhm_per_nm(5.0))
+    assert inst.eta == pytest.approx(cal.instrument_eta)
+    del rec["instrument_fwhm"]["eta"]  # a record written before the shape was measured
+    assert instrument_from_record(rec).eta == 0.5
 
 
 def test_too_few_rings_is_refused(au):
@@ -125,7 +135,7 @@ def test_calibrated_sample_d_spacings(au):
     from ringid.calibrate import fit_ring_widths
 
     g_true = 10.0 / d_al
-    _, g_fit = fit_ring_widths(prof, g_true * 1.001, np.full(d_al.size, 0.06))
+    _, g_fit, _ = fit_ring_widths(prof, g_true * 1.001, np.full(d_al.size, 0.06))
     rel = np.abs(g_fit / g_true - 1)
     # source: issue 3 target, calibrated d within 0.1 % (median)
     assert np.nanmedian(rel) < 1e-3
