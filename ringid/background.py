@@ -30,9 +30,11 @@ the profile minus a smooth trend of the clipped background (cubic Savitzky–Gol
 wider than the bump at g ≳ 3 nm⁻¹ yet able to follow the tail's curvature near the central beam),
 where the chord test has next to no curvature allowance: the bump is clipped, the tail kept
 (measured on the same profiles: +3 % at 3 nm). The price is a larger clipping-to-noise bias
-(median −0.6 σ of a bin on a noisy tail, against −0.15 σ without the trend; with 3-bin
-pre-smoothing it would be −1.7 σ and broad noise structure would reach the halo search), which
-the ring fit's smooth corrections take up.
+(median −0.6 σ of a bin on a noisy tail, against −0.15 σ without the trend;
+tests/test_background.py), which the ring fit's smooth corrections take up. The pre-smoothing is
+0.2 nm⁻¹ rather than a few bins for that reason: with 3 bins the bias was −1.7 σ and its slow
+variation along g reached the halo search (seen while developing, on the blank profile of
+benchmarks/bench_rings.py; not a test).
 """
 
 from __future__ import annotations
@@ -46,7 +48,6 @@ DEFAULT_WINDOW_PER_NM = 2.0
 # and it averages 20 bins of noise at 0.01 nm⁻¹ per bin
 DEFAULT_SMOOTH_PER_NM = 0.2
 DEFAULT_TREND_HALF_WIDTH_LN_G = 0.5
-TREND_ITERATIONS = 1  # a second pass changes sizes by < 1 % and costs 40 % more (measured)
 # sampling of the trend's ln g grid: the smoothing keeps nothing finer than its half-width
 TREND_POINTS_PER_HALF_WIDTH = 25
 
@@ -161,8 +162,7 @@ def estimate_background(
     window_bins = max(1, int(round(window_per_nm / step)))
     clipped = snip(values, window_bins)
     if trend_half_width_ln_g:
-        for _ in range(TREND_ITERATIONS):
-            trend = log_g_trend(g, clipped, trend_half_width_ln_g)
-            clipped = snip(values - trend, window_bins) + trend
+        trend = log_g_trend(g, clipped, trend_half_width_ln_g)
+        clipped = snip(values - trend, window_bins) + trend
     background_counts = lls_inverse(clipped)
     return np.clip(background_counts, 0.0, None) / gain

@@ -70,6 +70,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .background import DEFAULT_SMOOTH_PER_NM
 from .errors import RingidError
 from .model import Profile, Ring
 
@@ -565,7 +566,7 @@ def fit_rings(
     max_new_per_round: int = 8,
     background_iterations: int = 4,
     background_tolerance_sigma: float = 0.5,
-    cleaned_smooth_per_nm: float = 0.2,
+    cleaned_smooth_per_nm: float = DEFAULT_SMOOTH_PER_NM,
     shape_tolerance: float = 0.05,
     halo_trial: bool = True,
     band_misfit_fraction: float | None = None,

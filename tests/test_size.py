@@ -182,7 +182,7 @@ def test_rings_as_sharp_as_the_instrument_give_a_lower_limit():
         rng = np.random.default_rng(seed)
         positions = np.sort(rng.uniform(2.5, 12.0, 30))
         positions = positions[np.concatenate([[True], np.diff(positions) > 0.15])]
-        y = 300 * g**-2.5 + 1.0 + sum(pseudo_voigt(g, g0, 0.05, 0.5, rng.uniform(0.2, 1.0)) for g0 in positions)
+        y = _size_background(g) + sum(pseudo_voigt(g, g0, 0.05, 0.5, rng.uniform(0.2, 1.0)) for g0 in positions)
         pixels = 20.0 * g
         counts = rng.poisson(y * pixels)
         size = analyze_profile(Profile(g, counts / pixels, np.sqrt(np.maximum(counts, 1)) / pixels),
@@ -199,10 +199,7 @@ def test_lower_limit_stops_at_the_resolution_fraction():
     from ringid.size import RESOLUTION_FRACTION, pseudo_voigt_breadth
 
     instrument = InstrumentProfile(0.05, 0.0, 0.0)
-    rings = [FittedRing(g_per_nm=g0, g_sigma_per_nm=1e-5, fwhm_per_nm=0.05, fwhm_sigma_per_nm=1e-5, eta=0.0, area=1.0,
-                        area_sigma=0.01, kind="ring", significance=100.0, eta_sigma=1e-4,
-                        breadth_per_nm=float(pseudo_voigt_breadth(0.05, 0.0)), breadth_sigma_per_nm=1e-5)
-             for g0 in np.linspace(3.0, 12.0, 20)]
+    rings = [_ring(0.05, eta=0.0, rel_sigma=2e-4, g=g0) for g0 in np.linspace(3.0, 12.0, 20)]
     size, per_ring = sample_size(rings, instrument)
     limit = K_SPHERE_DIAMETER / (RESOLUTION_FRACTION * float(pseudo_voigt_breadth(0.05, 0.0)))
     assert size.is_lower_limit and size.lower_limit_nm == pytest.approx(limit)  # 250 nm
