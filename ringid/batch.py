@@ -116,16 +116,17 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
 
 
 def identify_batch(sample_dirs, library, *, window_standard: float, window_nominal: float, library_dir: str,
-                   log=sys.stderr) -> list[dict]:
+                   false_identification_rate: float = 0.01, log=sys.stderr) -> list[dict]:
     """The identification of every measured sample folder in ``sample_dirs`` against one loaded
     ``library``; returns the identification records (``status: unwritten`` as in ``measure_batch``)."""
-    from .measure import _error_text, identification_summary, identify_sample, write_failed_identification
+    from .measure import _error_text, identification_summary, identify_sample, library_index, write_failed_identification
 
+    index = library_index(library, window_standard, window_nominal)  # once: the decoys are the costly part
     records = []
     for d in sample_dirs:
         try:
-            out = identify_sample(d, library, window_standard=window_standard, window_nominal=window_nominal,
-                                  library_dir=library_dir)
+            out = identify_sample(d, index, window_standard=window_standard, window_nominal=window_nominal,
+                                  false_identification_rate=false_identification_rate, library_dir=library_dir)
         except Exception as exc:  # noqa: BLE001 - one sample's failure never stops the batch
             try:
                 out = write_failed_identification(d, exc)

@@ -239,28 +239,41 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
 
 
 def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = 0.005,
-                    window_nominal: float = 0.03, library_dir: str = "") -> dict:
+                    window_nominal: float = 0.03, false_identification_rate: float = 0.01,
+                    library_dir: str = "") -> dict:
     """Identification job of one measured sample: phases.csv, rings.csv, identification.json, overview.png.
 
-    ``library`` is a list of PhaseRings or a LibraryIndex. A sample whose image job failed gets
-    empty tables and a failed identification record carrying the same error.
+    ``library`` is a list of PhaseRings or a LibraryIndex (index it once, with
+    ``library_index(library, window_standard, window_nominal)``, when identifying many samples).
+    A sample whose image job failed gets empty tables and a failed identification record
+    carrying the same error.
     """
     import json
 
-    from .identify import IdentifySettings, identify, read_observed_rings, write_results
+    from .identify import IdentifySettings, LibraryIndex, identify, read_observed_rings, write_results
 
     d = Path(sample_dir)
     rec = json.loads((d / "sample.json").read_text(encoding="utf-8"))
     if rec.get("status") != "ok":
         return _write_failed_identification(d, rec.get("sample", d.name), rec.get("error", ""))
     kind = rec.get("calibration_kind", "standard")
-    settings = IdentifySettings(dilation_window=window_nominal if kind == "nominal" else window_standard)
+    settings = IdentifySettings(dilation_window=window_nominal if kind == "nominal" else window_standard,
+                                false_identification_rate=false_identification_rate)
+    if not isinstance(library, LibraryIndex):
+        library = library_index(library, window_standard, window_nominal)
     obs, rows = read_observed_rings(d / "measured_rings.csv")
     g_range = tuple(rec["g_range_per_nm"]) if rec.get("g_range_per_nm") else None
     result = identify(obs, library, settings, g_range_per_nm=g_range)
     write_results(d, rows, obs, result, settings, provenance={"library": library_dir})
     _overview(d, rec, rows, result, library)
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
+
+
+def library_index(library, window_standard: float = 0.005, window_nominal: float = 0.03):
+    """The LibraryIndex of a loaded library (with its decoys) for identifying samples at either window."""
+    from .identify import index_library
+
+    return index_library(library, decoy_clearance=max(window_standard, window_nominal))
 
 
 def identification_summary(out: dict) -> str:

@@ -28,6 +28,7 @@ SUMMARY_COLUMNS = [
     "sample", "status", "crystallinity", "phases", "alternatives", "confidence", "center_x_px", "center_y_px",
     "ellipticity", "crystallite_size_nm", "n_rings", "unexplained_rings", "flags", "error",
     "calibration", "fractions_rough", "crystallite_size_sigma_nm", "ring_character", "note",
+    "unexplained_d_angstrom", "unexplained_intensity_share", "false_identification_probability",
 ]
 
 SCREENING_NOTE = ("Phase identification is a screening result: ring positions fix a lattice only as well as the "
@@ -94,6 +95,10 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
         "crystallite_size_sigma_nm": _num(rec.get("crystallite_size_sigma_nm"), ".2g"),
         "ring_character": rec.get("ring_character", ""),
         "note": rec.get("note", ""),
+        # rings that no reported phase explains: their d (Å) and share of the sharp rings' area
+        "unexplained_d_angstrom": ";".join(_num(u.get("d_angstrom"), ".4f") for u in ident.get("unexplained", [])),
+        "unexplained_intensity_share": _num(ident.get("unexplained_intensity_share"), ".3f"),
+        "false_identification_probability": ";".join(_num(p, ".2g") for p in ident.get("false_identification_probability", [])),
     }
 
 
@@ -196,13 +201,35 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
         fmt = {"g_per_nm": ".4f", "d_angstrom": ".4f", "d_sigma_angstrom": ".4f", "fwhm_per_nm": ".3f", "area": ".4g", "size_nm": ".3g"}
         body = [[_num(r[c], fmt[c]) if c in fmt and r[c] not in ("", None) else r[c] for c in cols] for r in rings]
         parts.append(_table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}))
-    if ident.get("unexplained"):
-        parts.append('<p class="meta">unexplained rings (d, Å): ' + ", ".join(_num(u["d_angstrom"], ".4f") for u in ident["unexplained"]) + "</p>")
+    parts += _identification_notes(ident)
     geo = rec.get("geometry") or {}
     if geo:
         parts.append('<p class="meta">geometry: ' + ", ".join(f"{_e(k)} = {_e(_num(v, '.6g'))}" for k, v in geo.items()) + "</p>")
     parts.append("</div>")
     return "".join(parts)
+
+
+def _identification_notes(ident: dict) -> list[str]:
+    """The report's plain sentences about what the library could not explain or would not accept."""
+    out = []
+    if ident.get("unexplained"):
+        share = ident.get("unexplained_intensity_share")
+        share_text = f" ({float(share):.0%} of the ring intensity)" if isinstance(share, (int, float)) else ""
+        out.append('<p class="meta"><b>rings not explained by the library</b>' + _e(share_text) + ": d = "
+                   + ", ".join(_num(u["d_angstrom"], ".4f") for u in ident["unexplained"]) + " Å</p>")
+    for m in ident.get("lattice_mismatch", []):
+        dil, sig = m.get("dilation"), m.get("dilation_sigma")
+        if isinstance(dil, (int, float)):
+            sig_text = f" ± {float(sig) * 100:.2f}" if isinstance(sig, (int, float)) else ""
+            out.append(f'<p class="meta">{_e(m.get("phase", ""))} fits only with its lattice scaled by '
+                       f"{(float(dil) - 1) * 100:+.2f}{_e(sig_text)} %, outside the calibration's window: "
+                       "a different phase of the same structure type, or a calibration that is off.</p>")
+    for m in ident.get("not_significant", []):
+        p = m.get("false_identification_probability")
+        if isinstance(p, (int, float)):
+            out.append(f'<p class="meta">{_e(m.get("phase", ""))} was not reported: a phase absent from the sample '
+                       f"would score as well with probability {float(p):.2g}.</p>")
+    return out
 
 
 def write_report(results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report") -> Path:

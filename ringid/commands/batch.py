@@ -34,6 +34,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
                    help="dilation window for standard/constant calibrations (default 0.005)")
     p.add_argument("--window-nominal", type=float, default=0.03, metavar="REL",
                    help="dilation window for nominal calibrations (default 0.03)")
+    p.add_argument("--false-identification-rate", type=float, default=0.01, metavar="RATE",
+                   help="report a phase only when the chance that an absent phase scores as well is below RATE, "
+                        "controlled over the phases of a sample (default 0.01)")
     p.set_defaults(func=run_identify)
 
 
@@ -48,9 +51,11 @@ def run_measure(args) -> int:
 
 def run_identify(args) -> int:
     from ..batch import identify_batch
+    from .identify import check_rate
     from ..identify import load_library
 
     library = load_library(args.library)
     records = identify_batch(args.sample_dirs, library, window_standard=args.window_standard,
-                             window_nominal=args.window_nominal, library_dir=str(args.library))
+                             window_nominal=args.window_nominal, library_dir=str(args.library),
+                             false_identification_rate=check_rate(args.false_identification_rate))
     return 1 if any(r.get("status") == "unwritten" for r in records) else 0

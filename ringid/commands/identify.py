@@ -29,7 +29,19 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--g-range-per-nm", type=float, nargs=2, metavar=("LO", "HI"),
                    help="g range of the profile in which rings could be detected (default: the observed rings)")
     p.add_argument("--phases", nargs="*", metavar="PHASE", help="score only against these phases")
+    p.add_argument("--false-identification-rate", type=float, default=0.01, metavar="RATE",
+                   help="report a phase only when the chance that an absent phase scores as well is below RATE, "
+                        "controlled over the phases of a sample (default 0.01)")
     p.set_defaults(func=run)
+
+
+def check_rate(rate: float) -> float:
+    """The false-identification rate of the command line, or a one-line error."""
+    from ..errors import RingidError
+
+    if not 0 < rate < 1:
+        raise RingidError(None, f"--false-identification-rate must be between 0 and 1, got {rate}")
+    return rate
 
 
 def run(args) -> int:
@@ -43,7 +55,8 @@ def run(args) -> int:
         from ..measure import identification_summary, identify_sample
 
         out = identify_sample(args.sample_dir, library, window_standard=args.window_standard,
-                              window_nominal=args.window_nominal, library_dir=str(args.library))
+                              window_nominal=args.window_nominal, library_dir=str(args.library),
+                              false_identification_rate=check_rate(args.false_identification_rate))
         print(f"{args.sample_dir}: {identification_summary(out)}", file=sys.stderr)
         return 0
     if not args.rings or not args.output:
@@ -54,7 +67,8 @@ def run(args) -> int:
         if missing:
             raise RingidError(args.library, f"phase(s) not in the library: {', '.join(missing)}")
         library = [p for p in library if p.phase in set(args.phases)]
-    settings = IdentifySettings(dilation_window=args.dilation_window or WINDOW_BY_CALIBRATION[args.calibration_kind])
+    settings = IdentifySettings(dilation_window=args.dilation_window or WINDOW_BY_CALIBRATION[args.calibration_kind],
+                                false_identification_rate=check_rate(args.false_identification_rate))
     if args.dilation_window is not None and not 0 < args.dilation_window < 0.5:
         raise RingidError(None, f"--dilation-window must be between 0 and 0.5, got {args.dilation_window}")
     result = identify(obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None)

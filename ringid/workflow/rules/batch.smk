@@ -61,6 +61,7 @@ for _batch, _members in BATCHES.items():
             dirs=[f"{RESULTS}/samples/{s}" for s in _members],
             window_standard=config.get("identify", {}).get("dilation_window_standard", 0.005),
             window_nominal=config.get("identify", {}).get("dilation_window_nominal", 0.03),
+            false_identification_rate=config.get("identify", {}).get("false_identification_rate", 0.01),
         threads: 1
         resources:
             mem_mb=mem("cheap"),
@@ -70,4 +71,5 @@ for _batch, _members in BATCHES.items():
             " --library {LIB:q}"
             " --window-standard {params.window_standard}"
             " --window-nominal {params.window_nominal}"
+            " --false-identification-rate {params.false_identification_rate}"
             " > {log:q} 2>&1"

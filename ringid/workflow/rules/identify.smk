@@ -21,6 +21,7 @@ rule identify:
         outdir=lambda wc: f"{RESULTS}/samples/{wc.sample}",
         window_standard=config.get("identify", {}).get("dilation_window_standard", 0.005),
         window_nominal=config.get("identify", {}).get("dilation_window_nominal", 0.03),
+        false_identification_rate=config.get("identify", {}).get("false_identification_rate", 0.01),
     threads: 1
     resources:
         mem_mb=mem("cheap"),
@@ -31,4 +32,5 @@ rule identify:
         " --library {LIB:q}"
         " --window-standard {params.window_standard}"
         " --window-nominal {params.window_nominal}"
+        " --false-identification-rate {params.false_identification_rate}"
         " > {log:q} 2>&1"
