@@ -2,9 +2,11 @@
 
 What this stage does: for every library phase, search the lattice dilation α (d_obs = α·d_lib:
 camera-constant error plus strain) inside a window set by the calibration, score how well the
-phase explains the observed rings, choose the smallest set of phases (up to three) that explains
-them, attach a confidence and alternatives, refine lattice parameters, and label every ring with
-(phase, hkl) or leave it unexplained. What it does not do: read images or fit profiles.
+phase explains the observed rings, measure how well phases that are absent would score on the same
+rings, choose the smallest set of phases (up to three) that explains them and that absent phases
+would not match as well, attach a confidence and alternatives, refine lattice parameters, and label
+every ring with (phase, hkl) or leave it unexplained. What it does not do: read images or fit
+profiles.
 
 The score (natural-log odds; larger is better)
 -----------------------------------------------
@@ -37,16 +39,35 @@ against the number of possible lines, J. Appl. Cryst. 1, 108, 1968) and Smith & 
 accuracy × completeness N/N_poss, J. Appl. Cryst. 12, 60, 1979) to patterns with few rings,
 working in g (not 2θ) so scores are comparable across voltages.
 
-Selection: phases are added greedily while S grows by more than κ = ln 10 (prior odds of 10:1
-against each extra phase) plus the phase's new rings must number at least one; a phase enters the
-answer only if alone it scores at least ``accept_score`` above the empty explanation and matches
-``min_matched_rings`` rings. An empty answer is better than a wrong one.
+Selection. Phases are added greedily (up to three) while S grows by more than κ = ln 10 and the
+new phase explains rings the others do not. A phase may enter only if alone it scores at least
+``accept_score``, matches ``min_matched_rings`` rings, misses at most one of its strong rings
+(intensity ≥ a fifth of its strongest visible ring, and detectable at its scale ŝ_p, the matched
+rings' observed area over their predicted intensity), and fits with a dilation inside the window:
+a least-squares dilation more than 2σ outside it is a ``lattice_mismatch`` (another phase of the
+same structure type, or a calibration that is off), never a match.
 
-Confidence of phase p in the answer P: the posterior probability under equal priors that p,
-rather than any other library phase q in its place, is present,
-``1 / (1 + Σ_q exp(S(P−p+q) − S(P)) + exp(S(P−p) − S(P)))``. Phases within ln 10 of p are listed
-as alternatives (e.g. Au and Ag, 0.17 % apart, unless the calibration separates them); the
-separation from the best alternative is also given in σ of the dilation.
+The null: how high does an absent phase score on this sample's rings? Every library phase has
+decoys: copies with each ring moved by an independent random factor exp(±s), s beyond any window
+searched, so a decoy keeps its phase's number of rings, ring density and intensities but no lattice
+(target-decoy estimation, Elias & Gygi, Nature Methods 4, 207, 2007). The decoys are searched and
+scored exactly as the phases are. A proposed phase's gain in S is compared with the decoys' gains
+over the same phases already chosen: counted where the decoys reach, an exponential tail beyond
+(its scale never below one chance ring's worth of score, so that it errs towards larger
+probabilities); the chance that any of the n library phases does as well by chance is
+1 − (1 − p)^n (Šidák), the false-identification probability. The phases kept are the longest
+prefix of the greedy order whose false-identification rate stays below
+``false_identification_rate`` (ForwardStop, G'Sell et al., J. R. Stat. Soc. B 78, 423, 2016).
+When library phases explain only part of the rings and one cubic cell indexes all of them, the
+simpler answer is that cubic phase, absent from the library: nothing is reported
+(``one_cubic_lattice_fits_all``; bcc(a) rings are among those of fcc(a·√2), for example).
+
+Confidence of phase p: its closed-world posterior (equal priors, against every other library
+phase in its place and against leaving it out, 1/(1 + Σ_q e^{S(P−p+q)−S(P)} + e^{S(P−p)−S(P)})), times
+1/(1 + B) with B = −e·p_f·ln p_f the smallest Bayes factor for "a chance match" that the
+false-identification probability p_f allows (Sellke, Bayarri & Berger, Am. Stat. 55, 62, 2001),
+times the share of the ring area the answer explains (left-over rings may belong to an absent
+phase of which the match is only a part). Phases within ln 10 of p are listed as alternatives.
 """
 
 from __future__ import annotations
@@ -292,15 +313,15 @@ def _interval_mask(lib: LibraryIndex, lo: np.ndarray, hi: np.ndarray) -> np.ndar
     return np.cumsum(diff[:-1]) > 0
 
 
-def _evidence(lib: LibraryIndex, obs_g, tau, alphas, w_norm, rho0, first_row: int = 0):
-    """ln(ρ_p/ρ₀) of each observed ring for rows first_row … first_row + P − 1 and each dilation.
+def _evidence(lib: LibraryIndex, obs_g, tau, alphas, w_norm, rho0, row_ids=None):
+    """ln(ρ_p/ρ₀) of each observed ring for the index rows ``row_ids`` (default: all) and each dilation.
 
     alphas has shape (P, A); returns (evidence (P, A, N), nearest flat ring index (P, A, N)).
     """
     n_ph = alphas.shape[0]
     x = alphas[:, :, None] * obs_g[None, None, :]  # library frame: g_i·α
     t = alphas[:, :, None] * tau[None, None, :]
-    own = (first_row + np.arange(n_ph))[:, None, None]
+    own = (np.arange(n_ph) if row_ids is None else np.asarray(row_ids))[:, None, None]
     idx = np.searchsorted(lib.key, own * KEY_STRIDE + x)
     total = np.zeros(x.shape)
     best = np.full(x.shape, -1.0)
@@ -356,17 +377,22 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
     w_norm = lib.sqrt_intensity / np.where(wsum > 0, wsum, np.inf)[lib.phase_of]
     rho0 = 1.0 / (g_hi - g_lo)
 
-    # grid search over the window, in chunks of rows
+    # grid search over the window, in chunks of rows; a decoy that cannot enter an answer whatever
+    # its dilation (too few rings within reach, or too low a score even if every one matched) only
+    # needs to be known as such
     prior = -(np.log(alphas) ** 2) / (2 * sigma_alpha**2)
-    k = np.zeros(n_ph, dtype=int)
-    ev_k = np.zeros((n_ph, n_obs))
-    near_k = np.zeros((n_ph, n_obs), dtype=int)
-    pos_k = np.zeros(n_ph)
+    k = np.full(n_ph, int(np.argmax(prior)))
+    ev_k = np.full((n_ph, n_obs), -np.inf)
+    near_k = np.full((n_ph, n_obs), -1, dtype=int)
+    pos_k = np.full(n_ph, -np.inf)
+    n_reach, bound = _reach(lib, obs.g_per_nm, tau, v, u, w_norm, rho0, a_min, a_max)
+    hopeless = (np.arange(n_ph) >= len(lib.phases)) & ((n_reach < settings.min_matched_rings) | (bound < settings.accept_score))
+    grid_rows = np.flatnonzero(~hopeless)
     chunk = max(1, GRID_CHUNK_ELEMENTS // max(1, len(alphas) * n_obs))
-    for first in range(0, n_ph, chunk):
-        rows = slice(first, min(n_ph, first + chunk))
-        grid = np.broadcast_to(alphas, (rows.stop - first, len(alphas)))
-        ev, nearest = _evidence(lib, obs.g_per_nm, tau, grid, w_norm, rho0, first)
+    for first in range(0, len(grid_rows), chunk):
+        rows = grid_rows[first:first + chunk]
+        grid = np.broadcast_to(alphas, (len(rows), len(alphas)))
+        ev, nearest = _evidence(lib, obs.g_per_nm, tau, grid, w_norm, rho0, rows)
         pos = (v * np.maximum(u, ev)).sum(axis=2) + prior
         kk = np.argmax(pos, axis=1)
         r = np.arange(len(kk))
@@ -442,6 +468,28 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
                       share, scale, mismatch, eligible)
 
 
+REACH_SIGMA = 8.0  # library rings further than this many τ from an observed ring add nothing to its evidence
+
+
+def _reach(lib: LibraryIndex, obs_g, tau, v, u, w_norm, rho0, a_min, a_max):
+    """Per row: how many observed rings have a library ring within reach at some dilation in
+    [a_min, a_max], and an upper bound of the row's score (every reachable ring at the peak of the
+    sum of the mixture weights within reach; the dilation prior, missing-ring and intensity terms
+    only lower it)."""
+    n_rows = lib.n_rows
+    base = np.arange(n_rows)[:, None] * KEY_STRIDE
+    lo = base + a_min * (obs_g - REACH_SIGMA * tau)[None, :]
+    hi = base + a_max * (obs_g + REACH_SIGMA * tau)[None, :]
+    first = np.searchsorted(lib.key, lo, side="left")
+    last = np.searchsorted(lib.key, hi, side="right")
+    cum = np.r_[0.0, np.cumsum(w_norm)]
+    weight = cum[last] - cum[first]  # Σ w_j of the reachable library rings
+    with np.errstate(divide="ignore"):
+        peak = np.log(weight / (tau[None, :] * math.sqrt(2 * math.pi)) / rho0)
+    bound = (v * np.maximum(peak - u, 0.0)).sum(axis=1)
+    return (last > first).sum(axis=1), bound
+
+
 def _fit_inverse_dilation(obs_g, g_lib, matched, weight):
     """Weighted least squares of g_obs = (1/α)·g_lib over each row's matched rings: (1/α, σ(1/α)),
     σ scaled by √χ²_ν when that is above 1."""
@@ -481,7 +529,7 @@ def _tail_probability(stat: np.ndarray, null: np.ndarray, quantum: float) -> np.
     t = max(float(finite[k - 1]), 0.0) if k else 0.0
     top = finite[finite >= t]
     beta = max(float(np.mean(top - t)) * len(top) / (len(top) - 1), quantum) if len(top) > 1 else quantum
-    tail = (len(top) + 1.0) / (n + 1.0) * np.exp(-(stat - t) / beta)
+    tail = (len(top) + 1.0) / (n + 1.0) * np.exp(-np.maximum(stat - t, 0.0) / beta)
     return np.where(stat > t, tail, counted)
 
 
@@ -680,6 +728,9 @@ def identify(obs: ObservedRings, library: list[PhaseRings] | LibraryIndex, setti
                    "dilation_sigma": float(rows.free_dilation_sigma[q]), "score": float(rows.score[q])}
                   for q in np.flatnonzero(rows.lattice_mismatch[:n_ph] & (rows.score[:n_ph] >= settings.accept_score)
                                           & (rows.n_matched[:n_ph] >= settings.min_matched_rings))]
+    # a look-alike matters when nothing is reported or when it scores above the answer
+    best_reported = max((c.score for c in chosen), default=-math.inf)
+    mismatched = [m for m in mismatched if m["score"] > best_reported]
     mismatched.sort(key=lambda r: (-r["score"], r["phase"]))
     if mismatched:
         flags.append("lattice_mismatch")
