@@ -52,3 +52,21 @@ def test_report_escapes_untrusted_text(tmp_path):
     assert "<title>run &lt;b&gt;1&lt;/b&gt;</title>" in page
     assert page.count("<script>") == 1  # only the page's own sorting/filtering script
     assert "screening result" in page.lower()
+
+
+def test_unexplained_rings_mismatches_and_rejections_are_said_plainly(tmp_path):
+    res = make_results(tmp_path)
+    ident = json.loads((res / "samples" / "s1" / "identification.json").read_text())
+    ident.update({"unexplained": [{"d_angstrom": 3.1}, {"d_angstrom": 1.9876}], "unexplained_intensity_share": 0.4,
+                  "false_identification_probability": [0.0012],
+                  "lattice_mismatch": [{"phase": "Cu", "dilation": 1.0071, "dilation_sigma": 0.0002, "score": 30.0}],
+                  "not_significant": [{"phase": "NiO", "score": 12.0, "false_identification_probability": 0.08}]})
+    (res / "samples" / "s1" / "identification.json").write_text(json.dumps(ident))
+    page = write_report(res, ["s1", "s2", "s3"], ["c1"]).read_text()
+    assert "rings not explained by the library</b> (40% of the ring intensity): d = 3.1000, 1.9876 Å" in page
+    assert "Cu fits only with its lattice scaled by +0.71 ± 0.02 %" in page
+    assert "NiO was not reported" in page and "probability 0.08" in page
+    with open(res / "summary.csv", newline="") as fh:
+        s1 = next(csv.DictReader(fh))
+    assert s1["unexplained_d_angstrom"] == "3.1000;1.9876"
+    assert s1["unexplained_intensity_share"] == "0.400" and s1["false_identification_probability"] == "0.0012"
