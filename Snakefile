@@ -15,7 +15,7 @@ min_version("8.0")
 configfile: "config/config.yaml"
 
 
-from ringid.configcheck import config_problems
+from ringid.jobs.configcheck import config_problems
 
 _problems = config_problems(config, Path(workflow.basedir) / "config" / "config.schema.yaml")
 if _problems:

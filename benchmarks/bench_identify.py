@@ -36,8 +36,9 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
 
-    from ringid.identify import ObservedRings, identify, index_library, load_library
-    from ringid.library import build_library
+    from ringid.identify.score import ObservedRings, identify, index_library
+    from ringid.library.store import load_library
+    from ringid.library.store import build_library
 
     with tempfile.TemporaryDirectory() as lib_dir:
         build_library(ROOT / "reference_phases", lib_dir)

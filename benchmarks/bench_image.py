@@ -39,7 +39,7 @@ AU_INTENSITY_HEAD = [100, 45.5, 23.5, 23.4, 6.4]
 
 
 def _au():
-    from ringid.calibrate import pyfai_calibrant_rings
+    from ringid.calibration.calibrate import pyfai_calibrant_rings
 
     d, _, hkl = pyfai_calibrant_rings("Au")
     inten = np.array(AU_INTENSITY_HEAD + [5] * (d.size - len(AU_INTENSITY_HEAD)), dtype=float)
@@ -49,7 +49,7 @@ def _au():
 def _write_pattern(path, size, seed=1, **kw):
     import tifffile
 
-    from ringid.simulate import simulate_pattern
+    from ringid.synthetic.simulate import simulate_pattern
 
     d, inten, _ = _au()
     k = kw.pop("camera_constant_A_px", 1000.0 * size / 2048)
@@ -60,7 +60,7 @@ def _write_pattern(path, size, seed=1, **kw):
 
 def chain(path, calibration, fit_ellipse: bool):
     """The timed chain: load → masks → centre (+ ellipse) → integration (1D + cake)."""
-    from ringid.integrate import process_image
+    from ringid.image.stage import process_image
 
     return process_image(path, calibration, fit_ellipse=fit_ellipse)
 
@@ -70,8 +70,8 @@ def bench_speed(repeats: int = 3) -> dict:
     from pyFAI.detectors import Detector
     from pyFAI.integrator.azimuthal import AzimuthalIntegrator
 
-    from ringid.image import load_image
-    from ringid.model import Geometry
+    from ringid.image.load import load_image
+    from ringid.core.model import Geometry
 
     tmp = Path(tempfile.mkdtemp())
     path = tmp / "speed_2048.tif"
@@ -130,7 +130,7 @@ def bench_memory(size: int = 4096) -> dict:
         "import resource, sys, json\n"
         f"sys.path.insert(0, {str(Path(__file__).parent)!r})\n"
         "import bench_image as b\n"
-        "from ringid.model import Geometry\n"
+        "from ringid.core.model import Geometry\n"
         f"g = Geometry({size / 2 - 0.5}, {size / 2 - 0.5}, 0.02, 10.0, camera_constant_A_px={1000.0 * size / 2048},"
         " voltage_kv=200.0)\n"
         f"r = b.chain({str(path)!r}, g, True)\n"
@@ -170,12 +170,12 @@ def grid_cases(size: int):
 
 def run_case(case, size: int) -> dict:
     """One calibration and one sample measured with it; errors against the truth."""
-    from ringid.calibrate import calibrate_pattern, fit_ring_widths, pyfai_calibrant_rings
-    from ringid.center import refine_sample_center
-    from ringid.integrate import integrate_profile
-    from ringid.mask import build_mask
-    from ringid.model import Geometry
-    from ringid.simulate import simulate_pattern
+    from ringid.calibration.calibrate import calibrate_pattern, fit_ring_widths, pyfai_calibrant_rings
+    from ringid.image.center import refine_sample_center
+    from ringid.image.integrate import integrate_profile
+    from ringid.image.mask import build_mask
+    from ringid.core.model import Geometry
+    from ringid.synthetic.simulate import simulate_pattern
 
     d_au, i_au, hkl = _au()
     k_true = 1000.0 * size / 2048 * (1.0 - 0.5 * case["offset"])  # keep ≥ 3 rings in view off centre
@@ -270,10 +270,10 @@ ROBUSTNESS_CASES = {
 
 def bench_robustness(size: int = 2048) -> list[dict]:
     """Calibration errors on harder patterns (beam stop, ε = 2 %, centre 10 % off, nominal K 10 % off)."""
-    from ringid.calibrate import calibrate_pattern
-    from ringid.errors import RingidError
-    from ringid.mask import build_mask
-    from ringid.simulate import simulate_pattern
+    from ringid.calibration.calibrate import calibrate_pattern
+    from ringid.core.errors import RingidError
+    from ringid.image.mask import build_mask
+    from ringid.synthetic.simulate import simulate_pattern
 
     d_au, i_au, hkl = _au()
     k_true = 1000.0 * size / 2048 * 0.95

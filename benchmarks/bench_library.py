@@ -26,7 +26,7 @@ def main() -> None:
 
     import gemmi  # noqa: F401  (import cost is not part of the per-phase figure)
 
-    from ringid.library import build_phase
+    from ringid.library.store import build_phase
 
     cifs = sorted((ROOT / "reference_phases").glob("*.cif"))
     build_phase(cifs[0], tempfile.mkdtemp())  # warm up imports and caches

@@ -2,7 +2,7 @@
 
     python benchmarks/bench_open_world.py [--n 200] [--seed 1] [--phases 29]
 
-Synthetic ring lists made at run time by ringid.synthetic_rings, scored against the shipped
+Synthetic ring lists made at run time by ringid.synthetic.ring_lists, scored against the shipped
 library (or, with --phases 1000, the library expanded with random dilations as in
 bench_identify.py), at both dilation windows (±0.5 % standard film, ±3 % nominal):
 
@@ -37,7 +37,7 @@ WINDOWS = {"standard": 0.005, "nominal": 0.03}
 
 def make_cases(library, n, seed, windows=WINDOWS):
     """Every synthetic case: (kind, window name, ObservedRings, set of right phases[, what made it])."""
-    from ringid.synthetic_rings import as_observed, lattice_distance, observe, random_crystal, random_ring_list
+    from ringid.synthetic.ring_lists import as_observed, lattice_distance, observe, random_crystal, random_ring_list
 
     rng = np.random.default_rng(seed)
     cases = []
@@ -81,7 +81,7 @@ def make_cases(library, n, seed, windows=WINDOWS):
 
 
 def run(library_phases, cases, settings_for):
-    from ringid.identify import identify, index_library
+    from ringid.identify.score import identify, index_library
 
     index = index_library(library_phases)
     out = []
@@ -127,8 +127,8 @@ def reliability_table(reliability, edges=(0.0, 0.5, 0.8, 0.9, 0.95, 0.99, 1.0001
 def rate_figures(library, n, seed):
     """Lattice-free lists at both windows: how many get a phase, and how the smallest
     false-identification probability of a list is distributed (uniform would be calibrated)."""
-    from ringid.identify import IdentifySettings, identify, index_library
-    from ringid.synthetic_rings import random_ring_list
+    from ringid.identify.score import IdentifySettings, identify, index_library
+    from ringid.synthetic.ring_lists import random_ring_list
 
     index = index_library(library)
     print(f"library: {len(library)} phases, {len(index.decoys)} decoys; {n} lists per window")
@@ -157,8 +157,9 @@ def main() -> None:
     args = parser.parse_args()
 
     from bench_identify import expanded_library
-    from ringid.identify import IdentifySettings, load_library
-    from ringid.library import build_library
+    from ringid.identify.score import IdentifySettings
+    from ringid.library.store import load_library
+    from ringid.library.store import build_library
 
     with tempfile.TemporaryDirectory() as tmp:
         build_library(ROOT / "reference_phases", tmp)

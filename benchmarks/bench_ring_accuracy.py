@@ -13,7 +13,7 @@
    of D found / D − 1, and of the pulls (D found − D) / σ_D; and D found with the true background.
 4. Crystallinity of nanocrystal rings (sphere line profile ⊗ instrument) at the d-spacings of
    pyFAI's CeO2, TiO2 (rutile) and alpha_Al2O3 tables, without and with an a-TiO2 halo
-   (Faber–Ziman pair sum, ``ringid.amorphous``): the labels over two seeds, and under every
+   (Faber–Ziman pair sum, ``ringid.synthetic.amorphous``): the labels over two seeds, and under every
    broad component (halo or unresolved band) the model's χ²_ν and residual beyond the noise as
    a fraction of the signal; the same for real halos (a-Si + Au rings, a-Si, a-CuZr).
 """
@@ -33,7 +33,7 @@ sys.path.insert(0, str(ROOT / "tests"))
 def thirty_rings() -> None:
     import bench_rings as b
 
-    from ringid.rings import fit_rings
+    from ringid.profile.rings import fit_rings
 
     rng = np.random.default_rng(0)  # the draws of bench_rings.cases(): positions, then amplitudes
     pos = np.sort(rng.uniform(2.5, 13.0, 30))
@@ -49,9 +49,9 @@ def thirty_rings() -> None:
 def dense_size_bias() -> None:
     from pyFAI.calibrant import get_calibrant
 
-    from ringid.model import Profile
-    from ringid.rings import analyze_profile, fit_rings, pseudo_voigt
-    from ringid.size import K_SPHERE_DIAMETER, InstrumentProfile, sample_breadth, sample_size
+    from ringid.core.model import Profile
+    from ringid.profile.rings import analyze_profile, fit_rings, pseudo_voigt
+    from ringid.sample.size import K_SPHERE_DIAMETER, InstrumentProfile, sample_breadth, sample_size
 
     d = np.asarray(get_calibrant("CeO2").dspacing, float)  # source: pyFAI calibrant table CeO2 (Å)
     g = np.arange(0.5, 14.9, 0.005)
@@ -76,8 +76,8 @@ def dense_size_bias() -> None:
 def scherrer_bias(seeds: int = 10) -> None:
     from test_size import _lorentzian_size, _size_background, _size_profile, sphere_line_profile
 
-    from ringid.rings import analyze_profile, fit_rings
-    from ringid.size import InstrumentProfile, sample_size
+    from ringid.profile.rings import analyze_profile, fit_rings
+    from ringid.sample.size import InstrumentProfile, sample_size
 
     inst = InstrumentProfile(0.03, 0.0, 0.5)  # the profiles of tests/test_size.py
     for name, shape in (("Lorentzian", _lorentzian_size), ("sphere", sphere_line_profile)):
@@ -96,9 +96,9 @@ def scherrer_bias(seeds: int = 10) -> None:
 
 
 def _broad_misfits(a, profile) -> list[str]:
-    """χ²_ν and residual/signal under each broad component of an analysis (ringid.rings.misfit_under)."""
-    from ringid.background import valid_mask
-    from ringid.rings import misfit_under
+    """χ²_ν and residual/signal under each broad component of an analysis (ringid.profile.rings.misfit_under)."""
+    from ringid.profile.background import valid_mask
+    from ringid.profile.rings import misfit_under
 
     ok = valid_mask(profile.intensity, profile.sigma)
     out = []
@@ -113,7 +113,7 @@ def _broad_misfits(a, profile) -> list[str]:
 def nanocrystal_labels() -> None:
     from test_crystallinity import INSTRUMENT, TAIL, _a_tio2_halo, _halo, _nano_rings_of, _profile, _sharp_rings
 
-    from ringid.rings import analyze_profile
+    from ringid.profile.rings import analyze_profile
 
     def run(expected, seed):
         profile = _profile(expected, seed)

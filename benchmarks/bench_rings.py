@@ -1,9 +1,9 @@
 """Benchmark of the ring stage: background + detection + fitting of one 1D profile.
 
 Targets (issue 4): < 50 ms typical, < 200 ms worst case with 30 rings. Prints the median and
-the maximum over repeated runs of :func:`ringid.rings.fit_rings` and of the whole
-:func:`ringid.rings.analyze_profile` on synthetic profiles (Poisson noise on a power-law +
-exponential tail; pseudo-Voigt rings; a Debye-equation halo from :mod:`ringid.amorphous`).
+the maximum over repeated runs of :func:`ringid.profile.rings.fit_rings` and of the whole
+:func:`ringid.profile.rings.analyze_profile` on synthetic profiles (Poisson noise on a power-law +
+exponential tail; pseudo-Voigt rings; a Debye-equation halo from :mod:`ringid.synthetic.amorphous`).
 
     python benchmarks/bench_rings.py [--repeats N]
 """
@@ -16,10 +16,10 @@ import time
 
 import numpy as np
 
-from ringid import amorphous
-from ringid.model import Profile
-from ringid.rings import analyze_profile, fit_rings, pseudo_voigt
-from ringid.size import InstrumentProfile
+from ringid.synthetic import amorphous
+from ringid.core.model import Profile
+from ringid.profile.rings import analyze_profile, fit_rings, pseudo_voigt
+from ringid.sample.size import InstrumentProfile
 
 G = np.arange(1.0, 14.0, 0.01)  # 1/nm, 1300 bins
 TAIL = 500.0 * G**-2.5 + 0.5 * np.exp(-G / 5.0)

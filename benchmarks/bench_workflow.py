@@ -44,8 +44,8 @@ def make_patterns(folder: Path, n: int, size_px: int) -> Path:
 
     import tifffile
 
-    from ringid.demo import CALIBRATION, SCENARIO, _simulate
-    from ringid.library import build_phase
+    from ringid.synthetic.demo import CALIBRATION, SCENARIO, _simulate
+    from ringid.library.store import build_phase
 
     lib = folder / "simlib"
     for ph in sorted({p for d in (*SCENARIO, CALIBRATION) for p in d.phases}):
@@ -74,7 +74,7 @@ def make_patterns(folder: Path, n: int, size_px: int) -> Path:
 def cold_integrate1d(image: np.ndarray, geometry, method) -> float:
     from pyFAI.integrator.azimuthal import AzimuthalIntegrator
 
-    from ringid.units import electron_wavelength_angstrom
+    from ringid.core.units import electron_wavelength_angstrom
 
     pixel = 15e-6
     lam_m = electron_wavelength_angstrom(geometry.voltage_kv) * 1e-10
@@ -123,10 +123,11 @@ def main() -> None:
 
     import tifffile
 
-    from ringid.identify import index_library, load_library
-    from ringid.library import build_library
-    from ringid.measure import identify_sample, make_calibration, measure_sample, read_calibration_record
-    from ringid.sheets import read_calibrations
+    from ringid.identify.score import index_library
+    from ringid.library.store import load_library
+    from ringid.library.store import build_library
+    from ringid.jobs.measure import identify_sample, make_calibration, measure_sample, read_calibration_record
+    from ringid.jobs.sheets import read_calibrations
 
     t0 = time.perf_counter()
     build_library(ROOT / "reference_phases", work / "lib")
@@ -158,10 +159,10 @@ def main() -> None:
     image_work = statistics.median(stage_times.get("total", [np.nan]))
     rec("in-process image work / t_int (target <= 2)", image_work / t_int, "ratio")
 
-    rec("image job imports (interpreter + ringid.measure, integrate, rings)",
-        import_cost("ringid.cli, ringid.measure, ringid.integrate, ringid.rings, pyFAI.ext.histogram, scipy.optimize"), "s")
+    rec("image job imports (interpreter + ringid.jobs.measure, integrate, rings)",
+        import_cost("ringid.cli, ringid.jobs.measure, ringid.image.integrate, ringid.profile.rings, pyFAI.ext.histogram, scipy.optimize"), "s")
     rec("identify job imports (interpreter + identify, figures, pyplot)",
-        import_cost("ringid.cli, ringid.identify, ringid.figures, matplotlib.pyplot"), "s")
+        import_cost("ringid.cli, ringid.identify, ringid.report.figures, matplotlib.pyplot"), "s")
 
     env = dict(os.environ, PATH=os.path.dirname(sys.executable) + os.pathsep + os.environ.get("PATH", ""))
     for bs in batch_sizes:

@@ -14,8 +14,8 @@ import argparse
 import importlib
 import sys
 
-from . import __version__
-from .errors import RingidError
+from ringid import __version__
+from ringid.core.errors import RingidError
 
 # (module under ringid.commands, one-line help) in pipeline order
 COMMANDS = [

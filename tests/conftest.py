@@ -13,7 +13,7 @@ REFERENCE_PHASES = ROOT / "reference_phases"
 @pytest.fixture(scope="session")
 def reference_library(tmp_path_factory):
     """The shipped reference_phases/ built once per test session."""
-    from ringid.library import build_library
+    from ringid.library.store import build_library
 
     out = tmp_path_factory.mktemp("library")
     build_library(REFERENCE_PHASES, out)

@@ -1,9 +1,9 @@
-"""Tests of ringid.amorphous: scattering factors, Debye equation, random dense packing halos."""
+"""Tests of ringid.synthetic.amorphous: scattering factors, Debye equation, random dense packing halos."""
 
 import numpy as np
 import pytest
 
-from ringid import amorphous
+from ringid.synthetic import amorphous
 
 
 def test_scattering_factor_matches_gemmi_calculator():

@@ -1,11 +1,10 @@
-"""Tests of ringid.background: SNIP on the LLS scale keeps tails, removes rings, keeps halos."""
+"""Tests of ringid.profile.background: SNIP on the LLS scale keeps tails, removes rings, keeps halos."""
 
 import numpy as np
-import pytest
 
-from ringid import amorphous
-from ringid.background import estimate_background, lls, lls_inverse, snip
-from ringid.rings import pseudo_voigt
+from ringid.synthetic import amorphous
+from ringid.profile.background import estimate_background, lls, lls_inverse, snip
+from ringid.profile.rings import pseudo_voigt
 
 G = np.arange(1.0, 14.0, 0.01)  # 1/nm
 TAIL = 2000.0 * G**-2.5 + 5.0 * np.exp(-G / 6.0)  # power-law + exponential tail (METHODS.md §9)

@@ -7,7 +7,7 @@ Where the user meets each problem:
   (``status: ok``, ``crystallinity: no_signal``);
 - CIFs: ``ringid library build`` lists each failed CIF as ``ringid: warning: FILE: problem`` and
   in ``library/index.csv`` (status, error), and builds the others;
-- sheets and config: checked when the workflow starts (``ringid.sheets.read_sheets`` and the
+- sheets and config: checked when the workflow starts (``ringid.jobs.sheets.read_sheets`` and the
   JSON schema), every problem at once, before any job runs.
 
 Decisions: an image with no usable pixel (all zero, all saturated, all NaN) is an error (the
@@ -43,7 +43,7 @@ def au_d_spacings_angstrom() -> np.ndarray:
 
 
 def ring_pattern(**kw) -> np.ndarray:
-    from ringid.simulate import simulate_pattern
+    from ringid.synthetic.simulate import simulate_pattern
 
     d = au_d_spacings_angstrom()
     # rings about 4 px wide (0.3 1/nm at 0.08 1/nm per px), as a 256² frame records them
@@ -54,8 +54,8 @@ def ring_pattern(**kw) -> np.ndarray:
 @pytest.fixture(scope="module")
 def calibration(tmp_path_factory) -> Path:
     """A known-camera-constant calibration record, as the workflow's calibration job writes it."""
-    from ringid.measure import make_calibration
-    from ringid.sheets import CalibrationRow
+    from ringid.jobs.measure import make_calibration
+    from ringid.jobs.sheets import CalibrationRow
 
     path = tmp_path_factory.mktemp("cal") / "known.json"
     rec = make_calibration(CalibrationRow("known", "constant", 200.0, camera_constant_A_px=K_A_PX), path)
@@ -161,7 +161,7 @@ def test_size_limit_checked_before_the_pixels_are_read(tmp_path, calibration, ca
 
 def test_blank_pattern_is_no_signal_not_an_error(tmp_path, calibration, capsys):
     """Counts but no ring (an exposure through a hole): a result, centre from point symmetry."""
-    from ringid.simulate import simulate_pattern
+    from ringid.synthetic.simulate import simulate_pattern
 
     image = _tiff(tmp_path / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=2).image)
     rc, rec, _ = run_measure(image, calibration, tmp_path / "out", capsys)
@@ -192,7 +192,7 @@ def test_centre_outside_the_image_is_an_error(tmp_path, calibration, capsys):
 @pytest.mark.parametrize("centre", [(-60.0, 100.0), (300.0, 128.0), (128.0, -10.0)])
 def test_falloff_centre_found_outside_the_frame(centre):
     """The falloff centre is where the simulated direct beam is, also off the frame."""
-    from ringid.center import falloff_center
+    from ringid.image.center import falloff_center
 
     fc = falloff_center(ring_pattern(center_x_px=centre[0], center_y_px=centre[1]))
     assert fc.agreement > 0.9
@@ -201,8 +201,8 @@ def test_falloff_centre_found_outside_the_frame(centre):
 
 def test_falloff_centre_of_noise_does_not_agree():
     """Poisson noise on a flat level has no falloff: its gradients agree on no centre."""
-    from ringid.center import falloff_center
-    from ringid.integrate import FALLOFF_AGREEMENT_MIN
+    from ringid.image.center import falloff_center
+    from ringid.image.stage import FALLOFF_AGREEMENT_MIN
 
     for seed in range(5):
         data = np.random.default_rng(seed).poisson(100.0, (256, 256)).astype(float)
@@ -292,7 +292,7 @@ def test_untrusted_text_is_escaped_in_the_report(tmp_path, calibration, capsys):
     images.mkdir()
     bad_name = images / "x<script>alert('f')<"
     bad_name = _text(bad_name.with_name(bad_name.name + ".tif"))  # error text carries the file name
-    from ringid.simulate import simulate_pattern
+    from ringid.synthetic.simulate import simulate_pattern
 
     blank = _tiff(images / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=3).image)
     note = """<script>alert("note")</script> 'single' "double" & <i>"""
@@ -357,7 +357,7 @@ BAD_CALIBRATION_ROWS = [
 
 
 def test_sheet_problems_are_all_reported_together(sheet_folder):
-    from ringid.sheets import SheetError, read_sheets
+    from ringid.jobs.sheets import SheetError, read_sheets
 
     cal = _write(sheet_folder / "cal.csv", "calibration,image,standard,voltage_kv\nfilm,cal.tif,Au,200\n"
                  + "\n".join(r for _, r, _ in BAD_CALIBRATION_ROWS))
@@ -374,7 +374,7 @@ def test_sheet_problems_are_all_reported_together(sheet_folder):
 
 
 def test_missing_columns_of_both_sheets_reported_together(sheet_folder):
-    from ringid.sheets import SheetError, read_sheets
+    from ringid.jobs.sheets import SheetError, read_sheets
 
     cal = _write(sheet_folder / "cal.csv", "calibration,image,standard\nfilm,cal.tif,Au")
     samples = _write(sheet_folder / "samples.csv", "sample,image\ns1,a.tif")
@@ -389,7 +389,7 @@ def test_accepted_ids_stay_inside_the_results_folder():
     """Any id the sheet checker accepts names a folder directly under results/samples."""
     from hypothesis import given, settings, strategies as st
 
-    from ringid.sheets import Problems, _check_id
+    from ringid.jobs.sheets import Problems, _check_id
 
     root = Path("/results/samples")
 

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from conftest import REFERENCE_PHASES, ROOT, without_timings, write_sheet
-from ringid.batch import ImageOptions, identify_batch, make_batches, manifest_text, measure_batch, read_manifest
+from ringid.jobs.batch import ImageOptions, identify_batch, make_batches, manifest_text, measure_batch, read_manifest
 from ringid.cli import main
 
 K_A_PX = 125.0  # camera constant of the synthetic patterns (Å·px): Au rings at 53–123 px in 256²
@@ -67,9 +67,9 @@ def inputs(tmp_path_factory):
     import tifffile
     from pyFAI.calibrant import get_calibrant
 
-    from ringid.measure import make_calibration
-    from ringid.sheets import CalibrationRow
-    from ringid.simulate import simulate_pattern
+    from ringid.jobs.measure import make_calibration
+    from ringid.jobs.sheets import CalibrationRow
+    from ringid.synthetic.simulate import simulate_pattern
 
     base = tmp_path_factory.mktemp("batch")
     cal = get_calibrant("Au")
@@ -93,7 +93,7 @@ def inputs(tmp_path_factory):
 
 
 def _manifest(path: Path, inputs, samples) -> Path:
-    from ringid.sheets import SampleRow
+    from ringid.jobs.sheets import SampleRow
 
     rows = [SampleRow(s, str(inputs["images"][s]), "known", 200.0, f"note of {s}, with a comma") for s in samples]
     path.write_text(manifest_text(rows), encoding="utf-8")
@@ -139,16 +139,16 @@ def test_batch_commands_give_the_one_sample_files_and_isolate_a_bad_image(inputs
 def test_an_unexpected_exception_fails_only_its_sample(inputs, tmp_path, monkeypatch):
     """An exception escaping the per-sample function (here forced for one sample) is recorded
     in that sample's own files; the samples after it in the batch are measured."""
-    import ringid.measure
+    import ringid.jobs.measure
 
-    real = ringid.measure.measure_sample
+    real = ringid.jobs.measure.measure_sample
 
     def failing_for_one(image, *args, sample, **kwargs):
         if sample == "au_fine":
             raise RuntimeError("disk vanished")
         return real(image, *args, sample=sample, **kwargs)
 
-    monkeypatch.setattr(ringid.measure, "measure_sample", failing_for_one)
+    monkeypatch.setattr(ringid.jobs.measure, "measure_sample", failing_for_one)
     manifest = _manifest(tmp_path / "b001.csv", inputs, ["au_fine", "au_coarse"])
     records = measure_batch(read_manifest(manifest), str(inputs["calibrations"]), str(tmp_path / "out"), ImageOptions())
     assert [r["status"] for r in records] == ["failed", "ok"]
@@ -163,7 +163,7 @@ def test_an_unexpected_exception_fails_only_its_sample(inputs, tmp_path, monkeyp
 def test_identification_failures_stay_in_their_sample(inputs, tmp_path):
     """One sample with a broken rings table (a RingidError), one with an unreadable record (an
     unexpected ValueError from the JSON reader): both recorded as failed, the third identified."""
-    from ringid.identify import load_library
+    from ringid.library.store import load_library
 
     samples = ["au_fine", "au_coarse"]
     manifest = _manifest(tmp_path / "b001.csv", inputs, samples)

@@ -1,4 +1,4 @@
-"""Tests of camera-constant calibration (ringid.calibrate).
+"""Tests of camera-constant calibration (ringid.calibration.calibrate).
 
 Outside checks: the standards' ring positions come from pyFAI's calibrant
 d-spacing tables (NIST/literature lattice parameters), not from ringid's own
@@ -11,13 +11,19 @@ import math
 import numpy as np
 import pytest
 
-from ringid.calibrate import assign_rings, calibrate_pattern, pyfai_calibrant_rings, read_calibration, write_calibration
-from ringid.center import refine_sample_center
-from ringid.errors import RingidError
-from ringid.integrate import integrate_profile
-from ringid.mask import build_mask
-from ringid.simulate import simulate_pattern
-from ringid.units import nominal_camera_constant_a_px
+from ringid.calibration.calibrate import (
+    assign_rings,
+    calibrate_pattern,
+    pyfai_calibrant_rings,
+    read_calibration,
+    write_calibration,
+)
+from ringid.image.center import refine_sample_center
+from ringid.core.errors import RingidError
+from ringid.image.integrate import integrate_profile
+from ringid.image.mask import build_mask
+from ringid.synthetic.simulate import simulate_pattern
+from ringid.core.units import nominal_camera_constant_a_px
 
 SHAPE = (1024, 1024)
 
@@ -85,7 +91,7 @@ def test_silicon_standard_and_record_round_trip(tmp_path):
     geom, _ = read_calibration(out)
     assert geom.camera_constant_A_px == cal.geometry.camera_constant_A_px and geom.voltage_kv == 300.0
     # the instrumental ring profile the sample stage reads back: width line and shape
-    from ringid.measure import instrument_from_record
+    from ringid.jobs.measure import instrument_from_record
 
     inst = instrument_from_record(rec)
     assert inst.fwhm_per_nm(5.0) == pytest.approx(cal.instrument_fwhm_per_nm(5.0))
@@ -132,7 +138,7 @@ def test_calibrated_sample_d_spacings(au):
     geom = fit.geometry.__class__(**{**fit.geometry.__dict__,
                                     "camera_constant_A_px": cal.geometry.camera_constant_A_px})
     prof = integrate_profile(simg, smasks.mask, geom, with_cake=False)
-    from ringid.calibrate import fit_ring_widths
+    from ringid.calibration.calibrate import fit_ring_widths
 
     g_true = 10.0 / d_al
     _, g_fit, _ = fit_ring_widths(prof, g_true * 1.001, np.full(d_al.size, 0.06))
@@ -197,7 +203,7 @@ def test_cli_with_library_standard_and_search(tmp_path):
     from pathlib import Path
 
     from ringid.cli import main
-    from ringid.library import build_phase
+    from ringid.library.store import build_phase
 
     cif = Path(__file__).resolve().parents[1] / "reference_phases" / "Au.cif"
     lib = tmp_path / "lib"
@@ -227,7 +233,7 @@ def test_pattern_drawn_by_pyfai_geometry():
     from pyFAI.detectors import Detector
     from pyFAI.integrator.azimuthal import AzimuthalIntegrator
 
-    from ringid.units import electron_wavelength_angstrom
+    from ringid.core.units import electron_wavelength_angstrom
 
     lam_m = electron_wavelength_angstrom(200.0) * 1e-10
     # source: DESIGN.md handbook wavelength 200 kV = 2.5079 pm

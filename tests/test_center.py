@@ -1,4 +1,4 @@
-"""Tests of centre and ellipse finding on simulated patterns (ringid.center).
+"""Tests of centre and ellipse finding on simulated patterns (ringid.image.center).
 
 The ring list is the Au standard from pyFAI's calibrant table (not made here).
 """
@@ -8,11 +8,11 @@ import math
 import numpy as np
 import pytest
 
-from ringid.center import coarse_center, refine_geometry, refine_sample_center
-from ringid.errors import RingidError
-from ringid.mask import build_mask
-from ringid.model import Geometry
-from ringid.simulate import simulate_pattern
+from ringid.image.center import coarse_center, refine_geometry, refine_sample_center
+from ringid.core.errors import RingidError
+from ringid.image.mask import build_mask
+from ringid.core.model import Geometry
+from ringid.synthetic.simulate import simulate_pattern
 
 
 @pytest.fixture(scope="module")

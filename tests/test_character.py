@@ -1,13 +1,13 @@
-"""Tests of ringid.character on synthetic cakes: continuous, spotty (grain count), textured, single crystal."""
+"""Tests of ringid.sample.character on synthetic cakes: continuous, spotty (grain count), textured, single crystal."""
 
 import math
 
 import numpy as np
 import pytest
 
-from ringid.character import CharacterThresholds, pattern_character, ring_character
-from ringid.model import Profile
-from ringid.rings import FittedRing, analyze_profile, pseudo_voigt
+from ringid.sample.character import CharacterThresholds, pattern_character, ring_character
+from ringid.core.model import Profile
+from ringid.profile.rings import FittedRing, analyze_profile, pseudo_voigt
 
 G = np.arange(2.0, 9.0, 0.01)  # 1/nm
 N_AZ = 360

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from cifgen import cif_text, write_cif
-from ringid.cif import DEFAULT_U_ISO_ANGSTROM2, read_crystal
-from ringid.errors import RingidError
+from ringid.library.cif import DEFAULT_U_ISO_ANGSTROM2, read_crystal
+from ringid.core.errors import RingidError
 
 FCC_OPS = """loop_
 _space_group_symop_operation_xyz

@@ -1,4 +1,4 @@
-"""Tests of ringid.crystallinity on simulated profiles: crystalline, nanocrystalline (2–8 nm),
+"""Tests of ringid.sample.crystallinity on simulated profiles: crystalline, nanocrystalline (2–8 nm),
 amorphous (Debye-equation halos of random dense packings), mixed and blank."""
 
 import math
@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from test_size import sphere_line_profile
 
-from ringid import amorphous
-from ringid.crystallinity import CrystallinityThresholds, classify
-from ringid.model import Profile, Ring
-from ringid.rings import analyze_profile, pseudo_voigt
-from ringid.size import InstrumentProfile
+from ringid.synthetic import amorphous
+from ringid.sample.crystallinity import CrystallinityThresholds, classify
+from ringid.core.model import Profile, Ring
+from ringid.profile.rings import analyze_profile, pseudo_voigt
+from ringid.sample.size import InstrumentProfile
 
 G = np.arange(1.0, 14.0, 0.01)  # 1/nm
 TAIL = 500.0 * G**-2.5 + 0.5 * np.exp(-G / 5.0)

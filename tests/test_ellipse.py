@@ -1,11 +1,11 @@
-"""Tests of the affine distortion map and the joint sector fit (ringid.ellipse)."""
+"""Tests of the affine distortion map and the joint sector fit (ringid.image.ellipse)."""
 
 import math
 
 import numpy as np
 import pytest
 
-from ringid.ellipse import (
+from ringid.image.ellipse import (
     compose_distortion,
     distortion_matrix,
     ellipse_from_matrix,

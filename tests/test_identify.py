@@ -5,7 +5,8 @@ import math
 import numpy as np
 import pytest
 
-from ringid.identify import IdentifySettings, ObservedRings, identify, load_library
+from ringid.identify.score import IdentifySettings, ObservedRings, identify
+from ringid.library.store import load_library
 from test_library import pyfai_calibrant
 
 

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 import tifffile
 
-from ringid.errors import RingidError
-from ringid.image import load_image
+from ringid.core.errors import RingidError
+from ringid.image.load import load_image
 
 
 @pytest.fixture

@@ -1,11 +1,11 @@
-"""Tests of azimuthal integration (ringid.integrate) against the contract geometry and pyFAI itself."""
+"""Tests of azimuthal integration (ringid.image.integrate) against the contract geometry and pyFAI itself."""
 
 import numpy as np
 import pytest
 
-from ringid.integrate import affine_corrected_corners, g_array, integrate_profile
-from ringid.model import Geometry
-from ringid.simulate import simulate_pattern
+from ringid.image.integrate import affine_corrected_corners, g_array, integrate_profile
+from ringid.core.model import Geometry
+from ringid.synthetic.simulate import simulate_pattern
 
 # source: pyFAI calibrant table "Au", d(111) in Å
 AU_111_ANGSTROM = 2.35454987
@@ -83,7 +83,7 @@ def test_poisson_uncertainty_and_mask():
 def test_process_image_sample_and_halo_only(tmp_path):
     import tifffile
 
-    from ringid.integrate import process_image
+    from ringid.image.stage import process_image
 
     cal = Geometry(300.0, 300.0, 0.02, 40.0, camera_constant_A_px=600.0, voltage_kv=200.0)
     # source: pyFAI calibrant table "Al" d(111), d(200), d(220), d(311)

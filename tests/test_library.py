@@ -12,15 +12,9 @@ import pytest
 
 from cifgen import cif_text, write_cif
 from conftest import REFERENCE_PHASES
-from ringid.cif import read_crystal
-from ringid.library import (
-    INDEX_COLUMNS,
-    RING_COLUMNS,
-    build_library,
-    build_phase,
-    read_phase_rings,
-    ring_list,
-)
+from ringid.library.cif import read_crystal
+from ringid.library.store import INDEX_COLUMNS, RING_COLUMNS, build_library, build_phase, read_phase_rings
+from ringid.library.structure import ring_list
 
 # ----------------------------------------------------------------- pyFAI calibrant tables
 
@@ -271,7 +265,7 @@ def test_build_is_deterministic(tmp_path):
 
 
 def test_build_library_refuses_missing_folder(tmp_path):
-    from ringid.errors import RingidError
+    from ringid.core.errors import RingidError
 
     with pytest.raises(RingidError, match="not a folder"):
         build_library(tmp_path / "nope", tmp_path / "lib")

@@ -1,12 +1,12 @@
-"""Tests of the automatic masks (ringid.mask)."""
+"""Tests of the automatic masks (ringid.image.mask)."""
 
 import numpy as np
 import pytest
 import tifffile
 
-from ringid.errors import RingidError
-from ringid.mask import border_mask, build_mask, load_user_mask, noise_gain, outlier_pixel_mask, saturated_mask
-from ringid.simulate import simulate_pattern
+from ringid.core.errors import RingidError
+from ringid.image.mask import border_mask, build_mask, load_user_mask, noise_gain, outlier_pixel_mask, saturated_mask
+from ringid.synthetic.simulate import simulate_pattern
 
 # source: pyFAI calibrant table "Au": d(111), d(200), d(220), d(311), d(222) in Å
 AU_D = [2.35454987, 2.0391, 1.44186144, 1.22962357, 1.17727493]

@@ -13,9 +13,16 @@ import math
 import numpy as np
 import pytest
 
-from ringid.identify import (IdentifySettings, _forward_stop, _tail_probability, identify, index_library,
-                             load_library, null_bayes_factor)
-from ringid.synthetic_rings import as_observed, observe, random_crystal, random_ring_list
+from ringid.identify.score import (
+    IdentifySettings,
+    _forward_stop,
+    _tail_probability,
+    identify,
+    index_library,
+    null_bayes_factor,
+)
+from ringid.library.store import load_library
+from ringid.synthetic.ring_lists import as_observed, observe, random_crystal, random_ring_list
 from test_library import pyfai_calibrant
 
 WINDOWS = {"standard": 0.005, "nominal": 0.03}

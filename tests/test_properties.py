@@ -14,7 +14,7 @@ import pytest
 from hypothesis import HealthCheck, assume, event, given, settings, strategies as st
 
 from cifgen import cif_text, write_cif
-from ringid.errors import RingidError
+from ringid.core.errors import RingidError
 
 SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 
@@ -22,13 +22,13 @@ ellipticities = st.floats(0.0, 0.3)
 angles_deg = st.floats(-360.0, 360.0)
 
 
-# --------------------------------------------------------------------------- ellipse.py
+# --------------------------------------------------------------------------- image/ellipse.py
 
 
 @SETTINGS
 @given(ellipticities, angles_deg)
 def test_distortion_map_preserves_area_and_has_the_stated_semi_axes(eps, ang):
-    from ringid.ellipse import distortion_matrix, undistortion_matrix
+    from ringid.image.ellipse import distortion_matrix, undistortion_matrix
 
     a = distortion_matrix(eps, ang)
     assert abs(np.linalg.det(a) - 1.0) < 1e-12  # area-preserving (DESIGN.md convention)
@@ -40,7 +40,7 @@ def test_distortion_map_preserves_area_and_has_the_stated_semi_axes(eps, ang):
 @SETTINGS
 @given(st.floats(1e-3, 0.3), angles_deg)
 def test_ellipse_from_matrix_recovers_the_map(eps, ang):
-    from ringid.ellipse import compose_distortion, distortion_matrix, ellipse_from_matrix
+    from ringid.image.ellipse import compose_distortion, distortion_matrix, ellipse_from_matrix
 
     e, t = ellipse_from_matrix(distortion_matrix(eps, ang))
     assert abs(e - eps) < 1e-9
@@ -54,7 +54,7 @@ def test_ellipse_from_matrix_recovers_the_map(eps, ang):
 @SETTINGS
 @given(st.one_of(st.floats(max_value=-1e-9), st.floats(min_value=1.0)), angles_deg)
 def test_ellipticity_out_of_range_is_a_value_error(eps, ang):
-    from ringid.ellipse import distortion_matrix
+    from ringid.image.ellipse import distortion_matrix
 
     with pytest.raises(ValueError):
         distortion_matrix(eps, ang)
@@ -65,7 +65,7 @@ def test_ellipticity_out_of_range_is_a_value_error(eps, ang):
        st.integers(8, 36), st.floats(-3, 3), st.floats(-3, 3), st.floats(0.01, 1.0), st.integers(0, 2**31 - 1))
 def test_sector_fit_recovers_a_centre_offset(radii, n_sectors, dx, dy, sigma, seed):
     """Positions drawn from the fit's own linear model (centre only) are fitted back within their errors."""
-    from ringid.ellipse import fit_sector_positions
+    from ringid.image.ellipse import fit_sector_positions
 
     rng = np.random.default_rng(seed)
     psi = np.tile(np.linspace(0, 2 * np.pi, n_sectors, endpoint=False), len(radii))
@@ -86,7 +86,7 @@ def test_sector_fit_recovers_a_centre_offset(radii, n_sectors, dx, dy, sigma, se
 @given(st.lists(st.floats(30.0, 400.0), min_size=2, max_size=5, unique=True), st.floats(-2, 2), st.floats(-2, 2),
        st.floats(-0.01, 0.01), st.floats(-0.01, 0.01), st.integers(0, 2**31 - 1))
 def test_sector_fit_with_distortion_never_raises_and_stays_finite(radii, dx, dy, e1, e2, seed):
-    from ringid.ellipse import fit_sector_positions
+    from ringid.image.ellipse import fit_sector_positions
 
     assume(min(abs(a - b) for i, a in enumerate(radii) for b in radii[i + 1:]) > 1.0)
     rng = np.random.default_rng(seed)
@@ -100,7 +100,7 @@ def test_sector_fit_with_distortion_never_raises_and_stays_finite(radii, dx, dy,
     assert abs(fit.e1 - e1) < 1e-3 and abs(fit.e2 - e2) < 1e-3  # 0.05 px noise on radii ≥ 30 px
 
 
-# --------------------------------------------------------------------------- library.py
+# --------------------------------------------------------------------------- library/structure.py
 
 cubic_like = st.tuples(st.floats(2.0, 9.0), st.floats(2.0, 9.0), st.floats(2.0, 9.0),
                        st.floats(60.0, 120.0), st.floats(60.0, 120.0), st.floats(60.0, 120.0))
@@ -117,7 +117,7 @@ def _valid_cell(cell) -> bool:
 def test_enumerate_hkl_is_complete_and_agrees_with_gemmi(cell, d_min):
     import gemmi
 
-    from ringid.library import enumerate_hkl
+    from ringid.library.structure import enumerate_hkl
 
     assume(_valid_cell(cell))
     hkl, d = enumerate_hkl(cell, d_min)
@@ -133,7 +133,7 @@ def test_enumerate_hkl_is_complete_and_agrees_with_gemmi(cell, d_min):
     axes = np.arange(-lim, lim + 1)
     box = np.stack(np.meshgrid(axes, axes, axes, indexing="ij"), -1).reshape(-1, 3)
     box = box[np.any(box != 0, axis=1)]
-    from ringid.library import reciprocal_metric
+    from ringid.library.structure import reciprocal_metric
 
     inv_d2 = np.einsum("ni,ij,nj->n", box, reciprocal_metric(cell), box)
     wanted = {tuple(h) for h in box[inv_d2 <= (1 / d_min) ** 2 * (1 - 1e-9)].tolist()}
@@ -151,8 +151,8 @@ ELEMENTS = ["H", "C", "O", "Na", "Al", "Si", "Ti", "Fe", "Ni", "Zr", "Ag", "Ce",
        st.floats(0.9, 2.0), st.sampled_from([1e-5, 1e-4, 1e-3]))
 def test_ring_list_of_random_structures(tmp_path, cell, atoms, space_group, d_min, tol):
     """Random structures: either a one-line RingidError or a consistent ring list."""
-    from ringid.cif import read_crystal
-    from ringid.library import compute_reflections, ring_list
+    from ringid.library.cif import read_crystal
+    from ringid.library.structure import compute_reflections, ring_list
 
     assume(_valid_cell(cell))
     a, b, c, al, be, ga = cell
@@ -193,12 +193,13 @@ def test_ring_list_of_random_structures(tmp_path, cell, atoms, space_group, d_mi
     assert len(compute_reflections(crystal, d_min).d_angstrom) == len(refl.d_angstrom)
 
 
-# --------------------------------------------------------------------------- identify.py
+# --------------------------------------------------------------------------- identify/score.py
 
 
 @pytest.fixture(scope="module")
 def library_rings(reference_library):
-    from ringid.identify import index_library, load_library
+    from ringid.identify.score import index_library
+    from ringid.library.store import load_library
 
     phases = load_library(reference_library)
     return phases, index_library(phases)
@@ -211,7 +212,7 @@ observed = st.lists(st.tuples(st.floats(1.0, 15.0), st.floats(1e-4, 0.05), st.fl
 @SETTINGS
 @given(observed, st.sampled_from([0.005, 0.03]))
 def test_identify_random_rings(library_rings, rings, window):
-    from ringid.identify import IdentifySettings, ObservedRings, identify
+    from ringid.identify.score import IdentifySettings, ObservedRings, identify
 
     phases, index = library_rings
     arr = np.array(rings, float).reshape(-1, 4)
@@ -236,7 +237,7 @@ def test_identify_random_rings(library_rings, rings, window):
 def test_identify_finds_a_planted_phase(library_rings, data):
     """The strongest rings of a library phase, scaled within the window, are identified as it
     (or as a phase the result names as indistinguishable from it)."""
-    from ringid.identify import IdentifySettings, ObservedRings, identify
+    from ringid.identify.score import IdentifySettings, ObservedRings, identify
 
     phases, index = library_rings
     ph = data.draw(st.sampled_from(phases))

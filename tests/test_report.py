@@ -3,7 +3,8 @@
 import csv
 import json
 
-from ringid.report import SUMMARY_COLUMNS, write_report
+from ringid.report.summary import SUMMARY_COLUMNS
+from ringid.report.html import write_report
 
 
 def make_results(tmp_path):

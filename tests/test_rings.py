@@ -1,4 +1,4 @@
-"""Tests of ringid.rings: detection with a false-alarm level, joint pseudo-Voigt fitting, writers."""
+"""Tests of ringid.profile.rings: detection with a false-alarm level, joint pseudo-Voigt fitting, writers."""
 
 import csv
 import math
@@ -6,10 +6,10 @@ import math
 import numpy as np
 import pytest
 
-from ringid import amorphous
-from ringid.errors import RingidError
-from ringid.model import Profile
-from ringid.rings import (
+from ringid.synthetic import amorphous
+from ringid.core.errors import RingidError
+from ringid.core.model import Profile
+from ringid.profile.rings import (
     RINGS_CSV_COLUMNS,
     analyze_profile,
     detection_threshold,

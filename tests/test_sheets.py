@@ -2,7 +2,7 @@
 
 import pytest
 
-from ringid.sheets import SheetError, read_calibrations, read_samples, read_sheets
+from ringid.jobs.sheets import SheetError, read_calibrations, read_samples, read_sheets
 
 
 @pytest.fixture()

@@ -1,11 +1,12 @@
-"""Tests of the pattern simulator (ringid.simulate)."""
+"""Tests of the pattern simulator (ringid.synthetic.simulate)."""
 
 import math
 
 import numpy as np
 import pytest
 
-from ringid.simulate import pseudo_voigt, pseudo_voigt_fwhm, simulate_pattern
+from ringid.profile.lineshape import unit_pseudo_voigt as pseudo_voigt, voigt_as_pseudo_voigt as pseudo_voigt_fwhm
+from ringid.synthetic.simulate import simulate_pattern
 
 # source: pyFAI calibrant table "Au" (a = 4.0782 Å), first ring d(111)
 AU_111_ANGSTROM = 2.35454987

@@ -1,4 +1,4 @@
-"""Tests of ringid.size: Voigt-aware instrument removal and Scherrer (sphere diameter, K = 4/3)."""
+"""Tests of ringid.sample.size: Voigt-aware instrument removal and Scherrer (sphere diameter, K = 4/3)."""
 
 import math
 
@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from scipy.special import voigt_profile
 
-from ringid.model import Profile
-from ringid.rings import FittedRing, analyze_profile, pseudo_voigt
-from ringid.size import (
+from ringid.core.model import Profile
+from ringid.profile.rings import FittedRing, analyze_profile, pseudo_voigt
+from ringid.sample.size import (
     K_SPHERE_DIAMETER,
     InstrumentProfile,
     ring_size,
@@ -196,7 +196,7 @@ def test_lower_limit_stops_at_the_resolution_fraction():
     """Rings that are the instrument exactly (noise-free, 20 of them): however precise the fit,
     a sample breadth below a tenth of the instrument's is not claimed (RESOLUTION_FRACTION,
     common practice), so the limit is K/(0.1 β_instr)."""
-    from ringid.size import RESOLUTION_FRACTION, pseudo_voigt_breadth
+    from ringid.sample.size import RESOLUTION_FRACTION, pseudo_voigt_breadth
 
     instrument = InstrumentProfile(0.05, 0.0, 0.0)
     rings = [_ring(0.05, eta=0.0, rel_sigma=2e-4, g=g0) for g0 in np.linspace(3.0, 12.0, 20)]

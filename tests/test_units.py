@@ -3,7 +3,7 @@
 import pytest
 import scipy.constants as sc
 
-from ringid.units import (
+from ringid.core.units import (
     ELECTRON_MASS_KG,
     ELEMENTARY_CHARGE_C,
     PLANCK_J_S,

@@ -7,7 +7,6 @@ import re
 import shutil
 import subprocess
 import sys
-from pathlib import Path
 
 import pytest
 
@@ -87,8 +86,8 @@ def test_contract_files_and_columns(run):
     cal = json.loads((results / "calibrations" / "cal_Au_film.json").read_text())
     for key in ("camera_constant_A_px", "center_x_px", "center_y_px", "ellipticity", "ellipse_angle_deg", "voltage_kv", "rings"):
         assert key in cal
-    # source: the demo's true camera constant (ringid.demo, scaled to 512 px) — the simulator's own truth
-    from ringid.demo import CAMERA_CONSTANT_A_PX
+    # source: the demo's true camera constant (ringid.synthetic.demo, scaled to 512 px) — the simulator's own truth
+    from ringid.synthetic.demo import CAMERA_CONSTANT_A_PX
 
     assert cal["camera_constant_A_px"] == pytest.approx(CAMERA_CONSTANT_A_PX * 512 / 2048, rel=5e-4)
     index = read_csv(results / "library" / "index.csv")
@@ -101,7 +100,7 @@ def test_contract_files_and_columns(run):
 
 
 def test_science_of_the_demo_subset(run):
-    from ringid.demo import expected_answers
+    from ringid.synthetic.demo import expected_answers
 
     rows = {r["sample"]: r for r in read_csv(run["results"] / "summary.csv")}
     truth = expected_answers()

@@ -266,9 +266,9 @@ def test_4096_float32_pattern_fits_the_declared_image_job_memory(tmp_path):
     import tifffile
     import yaml
 
-    from ringid.measure import make_calibration
-    from ringid.sheets import CalibrationRow
-    from ringid.simulate import simulate_pattern
+    from ringid.jobs.measure import make_calibration
+    from ringid.jobs.sheets import CalibrationRow
+    from ringid.synthetic.simulate import simulate_pattern
     from pyFAI.calibrant import get_calibrant
 
     declared_mb = yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8"))["resources"]["image_mem_mb"]

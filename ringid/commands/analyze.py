@@ -28,10 +28,10 @@ def run(args) -> int:
     import tempfile
     from pathlib import Path
 
-    from ..errors import RingidError
-    from ..identify import load_library
-    from ..measure import identify_sample, make_calibration, measure_sample
-    from ..sheets import CalibrationRow
+    from ringid.core.errors import RingidError
+    from ringid.library.store import load_library
+    from ringid.jobs.measure import identify_sample, make_calibration, measure_sample
+    from ringid.jobs.sheets import CalibrationRow
 
     out = Path(args.output)
     sample = args.sample or Path(args.image).stem

@@ -41,7 +41,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 
 
 def run_measure(args) -> int:
-    from ..batch import ImageOptions, measure_batch, read_manifest
+    from ringid.jobs.batch import ImageOptions, measure_batch, read_manifest
 
     options = ImageOptions(max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                            min_ring_g_per_nm=args.min_ring_g_per_nm)
@@ -50,9 +50,9 @@ def run_measure(args) -> int:
 
 
 def run_identify(args) -> int:
-    from ..batch import identify_batch
+    from ringid.jobs.batch import identify_batch
     from .identify import check_rate
-    from ..identify import load_library
+    from ringid.library.store import load_library
 
     library = load_library(args.library)
     records = identify_batch(args.sample_dirs, library, window_standard=args.window_standard,

@@ -32,14 +32,14 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 def run(args) -> int:
     import sys
 
-    from ..calibrate import calibrate_image, pyfai_calibrant_rings, write_calibration
-    from ..errors import RingidError
-    from ..units import nominal_camera_constant_a_px
+    from ringid.calibration.calibrate import calibrate_image, pyfai_calibrant_rings, write_calibration
+    from ringid.core.errors import RingidError
+    from ringid.core.units import nominal_camera_constant_a_px
 
     if args.standard:
         if not args.library:
             raise RingidError(None, "--standard needs --library (or use --pyfai-calibrant)")
-        from ..library import read_phase_rings
+        from ringid.library.store import read_phase_rings
 
         rings = read_phase_rings(args.library, args.standard)
         d, inten, hkl = rings.d_angstrom, rings.intensity, rings.hkl

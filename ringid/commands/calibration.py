@@ -20,9 +20,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 def run(args) -> int:
     import sys
 
-    from ..errors import RingidError
-    from ..measure import make_calibration
-    from ..sheets import read_calibrations
+    from ringid.core.errors import RingidError
+    from ringid.jobs.measure import make_calibration
+    from ringid.jobs.sheets import read_calibrations
 
     rows = read_calibrations(args.sheet)
     if args.calibration not in rows:

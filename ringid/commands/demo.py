@@ -15,8 +15,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 def run(args) -> int:
     import sys
 
-    from ..demo import write_demo
-    from ..errors import RingidError
+    from ringid.synthetic.demo import write_demo
+    from ringid.core.errors import RingidError
 
     if args.size_px < 256:
         raise RingidError(None, f"--size-px must be at least 256, got {args.size_px}")

@@ -37,7 +37,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 
 def check_rate(rate: float) -> float:
     """The false-identification rate of the command line, or a one-line error."""
-    from ..errors import RingidError
+    from ringid.core.errors import RingidError
 
     if not 0 < rate < 1:
         raise RingidError(None, f"--false-identification-rate must be between 0 and 1, got {rate}")
@@ -47,12 +47,14 @@ def check_rate(rate: float) -> float:
 def run(args) -> int:
     import sys
 
-    from ..errors import RingidError
-    from ..identify import WINDOW_BY_CALIBRATION, IdentifySettings, identify, load_library, read_observed_rings, write_results
+    from ringid.core.errors import RingidError
+    from ringid.identify.files import WINDOW_BY_CALIBRATION, read_observed_rings, write_results
+    from ringid.identify.score import IdentifySettings, identify
+    from ringid.library.store import load_library
 
     library = load_library(args.library)
     if args.sample_dir:
-        from ..measure import identification_summary, identify_sample
+        from ringid.jobs.measure import identification_summary, identify_sample
 
         out = identify_sample(args.sample_dir, library, window_standard=args.window_standard,
                               window_nominal=args.window_nominal, library_dir=str(args.library),

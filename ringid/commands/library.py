@@ -53,8 +53,8 @@ def _add_physics(p: argparse.ArgumentParser) -> None:
 
 
 def run_build(args) -> int:
-    from ..errors import RingidError
-    from ..library import build_library
+    from ringid.core.errors import RingidError
+    from ringid.library.store import build_library
 
     def progress(i, n, rec):
         if not args.quiet:
@@ -73,7 +73,7 @@ def run_build(args) -> int:
 
 
 def run_phase(args) -> int:
-    from ..library import build_phase
+    from ringid.library.store import build_phase
 
     rec = build_phase(args.cif, args.output, d_min_angstrom=args.d_min_angstrom, merge_tolerance=args.merge_tolerance)
     if rec["status"] != "ok":
@@ -82,7 +82,7 @@ def run_phase(args) -> int:
 
 
 def run_index(args) -> int:
-    from ..library import write_index
+    from ringid.library.store import write_index
 
     rows = write_index(args.library, args.phases)
     n_ok = sum(r["status"] == "ok" for r in rows)
@@ -91,7 +91,7 @@ def run_index(args) -> int:
 
 
 def run_show(args) -> int:
-    from ..library import read_phase_record, read_phase_rings
+    from ringid.library.store import read_phase_record, read_phase_rings
 
     rec = read_phase_record(args.library, args.phase)
     rings = read_phase_rings(args.library, args.phase)

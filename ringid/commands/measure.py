@@ -29,7 +29,7 @@ def run(args) -> int:
     import sys
     from pathlib import Path
 
-    from ..measure import measure_sample
+    from ringid.jobs.measure import measure_sample
 
     rec = measure_sample(args.image, args.calibration, args.output, sample=args.sample or Path(args.image).stem,
                          calibration_id=args.calibration_id, note=args.note, voltage_kv=args.voltage_kv,

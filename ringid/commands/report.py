@@ -15,8 +15,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 def run(args) -> int:
     import sys
 
-    from ..report import write_report
-    from ..sheets import read_calibrations, read_samples
+    from ringid.report.html import write_report
+    from ringid.jobs.sheets import read_calibrations, read_samples
 
     cals = read_calibrations(args.calibrations_sheet)
     samples = read_samples(args.samples_sheet, cals)

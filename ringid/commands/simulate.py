@@ -47,20 +47,20 @@ def run(args) -> int:
     import numpy as np
     import tifffile
 
-    from ..atomic import atomic_path, write_json
-    from ..errors import RingidError
-    from ..simulate import simulate_pattern
-    from ..units import nominal_camera_constant_a_px
+    from ringid.core.atomic import atomic_path, write_json
+    from ringid.core.errors import RingidError
+    from ringid.synthetic.simulate import simulate_pattern
+    from ringid.core.units import nominal_camera_constant_a_px
 
     if args.phase:
         if not args.library:
             raise RingidError(None, "--phase needs --library")
-        from ..library import read_phase_rings
+        from ringid.library.store import read_phase_rings
 
         rings = read_phase_rings(args.library, args.phase)
         d, inten, source = rings.d_angstrom, rings.intensity, f"library {args.library}, phase {args.phase}"
     else:
-        from ..calibrate import pyfai_calibrant_rings
+        from ringid.calibration.calibrate import pyfai_calibrant_rings
 
         d, _, _ = pyfai_calibrant_rings(args.pyfai_calibrant)
         inten = np.full(d.size, 50.0)

@@ -1,5 +1,5 @@
 # Used instead of sample.smk and identify.smk when batch_size > 1: the samples, in sorted id
-# order, are cut into consecutive batches of batch_size (ringid.batch.make_batches), and each batch
+# order, are cut into consecutive batches of batch_size (ringid.jobs.batch.make_batches), and each batch
 # is ONE image job and ONE identification job, each running its samples one after another in one
 # interpreter. Per-sample files are exactly those of the one-sample rules.
 # INPUTS: per batch, its images and calibration records
@@ -8,8 +8,8 @@
 # The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
 # note, voltage or membership reruns that batch only, and no extra job writes a file for it.
 
-from ringid.batch import make_batches, manifest_text
-from ringid.measure import SAMPLE_FILES
+from ringid.jobs.batch import make_batches, manifest_text
+from ringid.jobs.measure import SAMPLE_FILES
 
 BATCHES = make_batches(SAMPLES, config["batch_size"])
 IDENTIFY_FILES = ("phases.csv", "rings.csv", "identification.json", "overview.png")

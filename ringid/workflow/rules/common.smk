@@ -5,7 +5,7 @@ import os
 import sys
 from pathlib import Path
 
-from ringid.sheets import SheetError, read_sheets
+from ringid.jobs.sheets import SheetError, read_sheets
 
 RESULTS = config["results_dir"].rstrip("/")
 LIB = f"{RESULTS}/library"

@@ -1,0 +1,7 @@
+"""``python -m ringid``: the same command as ``ringid``."""
+
+import sys
+
+from ringid.cli import main
+
+sys.exit(main())

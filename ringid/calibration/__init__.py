@@ -1,0 +1,1 @@
+"""Camera constant, centre, ellipse and instrumental ring profile from a standard film."""

@@ -1,0 +1,489 @@
+"""Camera-constant calibration from a pattern of a standard film (e.g. evaporated Au).
+
+Steps: load and mask the image; fit the centre and ellipse on its rings
+(:func:`ringid.image.center.refine_geometry`); assign the observed rings to the
+standard's reflections; fit K, centre, ε and θ jointly by least squares on the
+ring positions measured in azimuth sectors; integrate the profile at the result
+and fit each assigned ring's width to give the instrumental FWHM as a line in g.
+
+Ring assignment: every pairing of an observed ring radius R_k with a standard
+d-spacing d_j proposes K = R_k·d_j (within ±15 % of a nominal K when one is given,
+otherwise all). Each proposal is scored by how many observed rings fall within
+0.5 % of a standard ring, minus the unexplained observed rings, minus the strong
+standard rings that should lie in the observed radius range but were not seen
+(this rejects sub-multiples such as K/2, which maps 111, 200, … onto 222, 400, …).
+The standard's list comes either from the phase library or, as an outside check,
+from pyFAI's calibrant tables (plain arrays of d and relative intensity).
+
+The standard's own lattice parameter sets the accuracy ceiling: a strained or
+alloyed film shifts K by the same relative amount (DESIGN.md).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ringid.core.errors import RingidError
+from ringid.core.model import Geometry
+from ringid.core.units import electron_wavelength_angstrom
+
+MATCH_TOLERANCE = 0.005  # relative radius tolerance for a ring to count as assigned
+NOMINAL_WINDOW = 0.15  # a nominal K is trusted to ±15 %
+STRONG_FRACTION = 0.2  # standard rings at ≥ 20 % of the strongest must be seen when in range
+MIN_ASSIGNED_RINGS = 3
+
+
+@dataclass(frozen=True)
+class RingAssignment:
+    """Observed ring k assigned to standard ring j (indices into the inputs), and the K proposal."""
+
+    camera_constant_A_px: float
+    observed_index: np.ndarray
+    standard_index: np.ndarray
+    score: float
+    unassigned_observed: np.ndarray
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """Result of a calibration, as written to CAL.json.
+
+    geometry: K (Å·px), centre, ε, θ, voltage. Sigmas are standard uncertainties from
+    the least-squares covariance scaled by the residual scatter. ring_* arrays are per
+    assigned ring. FWHM line: fwhm_per_nm = fwhm_c0_per_nm + fwhm_c1 · g_per_nm.
+    """
+
+    geometry: Geometry
+    camera_constant_sigma_A_px: float
+    ellipticity_sigma: float
+    ellipse_angle_sigma_deg: float
+    ring_hkl: tuple[str, ...]
+    ring_d_calc_angstrom: np.ndarray
+    ring_g_obs_per_nm: np.ndarray
+    ring_g_sigma_per_nm: np.ndarray
+    ring_fwhm_per_nm: np.ndarray
+    fwhm_c0_per_nm: float
+    fwhm_c1: float
+    unassigned_g_per_nm: np.ndarray
+    standard: str = ""
+    standard_source: str = ""
+    image: str = ""
+    instrument_eta: float = 0.5  # pseudo-Voigt mixing η of the standard's rings (median)
+    flags: tuple[str, ...] = ()
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def ring_g_calc_per_nm(self) -> np.ndarray:
+        return 10.0 / self.ring_d_calc_angstrom
+
+    def instrument_fwhm_per_nm(self, g_per_nm):
+        """Instrumental ring FWHM (1/nm) at g (1/nm), from the fitted line."""
+        return self.fwhm_c0_per_nm + self.fwhm_c1 * np.asarray(g_per_nm, dtype=float)
+
+    def to_record(self, *, pixel_size_um: float | None = None, nominal_camera_constant_A_px: float | None = None) -> dict:
+        """The CAL.json content (DESIGN.md contract fields first)."""
+        g = self.geometry
+        resid = 100.0 * (self.ring_g_obs_per_nm - self.ring_g_calc_per_nm) / self.ring_g_calc_per_nm
+        rec = {
+            "camera_constant_A_px": g.camera_constant_A_px,
+            "camera_constant_sigma_A_px": self.camera_constant_sigma_A_px,
+            "center_x_px": g.center_x_px,
+            "center_y_px": g.center_y_px,
+            "center_sigma_px": g.center_sigma_px,
+            "ellipticity": g.ellipticity,
+            "ellipticity_sigma": self.ellipticity_sigma,
+            "ellipse_angle_deg": g.ellipse_angle_deg,
+            "ellipse_angle_sigma_deg": self.ellipse_angle_sigma_deg,
+            "voltage_kv": g.voltage_kv,
+            "wavelength_angstrom": electron_wavelength_angstrom(g.voltage_kv),
+            "standard": self.standard,
+            "standard_source": self.standard_source,
+            "image": self.image,
+            "nominal_camera_constant_A_px": nominal_camera_constant_A_px,
+            "camera_length_mm": (g.camera_constant_A_px * pixel_size_um * 1e-3 / electron_wavelength_angstrom(g.voltage_kv)
+                                 if pixel_size_um else None),
+            "pixel_size_um": pixel_size_um,
+            "n_rings_assigned": int(self.ring_d_calc_angstrom.size),
+            "rms_residual_percent": float(np.sqrt(np.mean(resid**2))),
+            "rings": [
+                {"hkl": h, "d_calc_angstrom": float(dc), "g_calc_per_nm": float(10.0 / dc), "g_obs_per_nm": float(go),
+                 "g_sigma_per_nm": float(gs), "d_obs_angstrom": float(10.0 / go), "residual_percent": float(r),
+                 "fwhm_per_nm": float(fw)}
+                for h, dc, go, gs, r, fw in zip(self.ring_hkl, self.ring_d_calc_angstrom, self.ring_g_obs_per_nm,
+                                                self.ring_g_sigma_per_nm, resid, self.ring_fwhm_per_nm)
+            ],
+            "instrument_fwhm": {
+                "model": "fwhm_per_nm = c0_per_nm + c1 * g_per_nm (pseudo-Voigt FWHM of the standard's rings); "
+                         "eta: their median pseudo-Voigt mixing",
+                "c0_per_nm": self.fwhm_c0_per_nm,
+                "c1": self.fwhm_c1,
+                "eta": self.instrument_eta,
+                "g_min_per_nm": float(np.min(self.ring_g_obs_per_nm)),
+                "g_max_per_nm": float(np.max(self.ring_g_obs_per_nm)),
+            },
+            "unassigned_rings_g_per_nm": [float(x) for x in self.unassigned_g_per_nm],
+            "flags": list(self.flags),
+            "notes": list(self.notes),
+        }
+        return rec
+
+
+def assign_rings(radius_px, standard_d_angstrom, standard_intensity=None, *,
+                 nominal_camera_constant_A_px: float | None = None, search_min_radius_px: float = 0.0,
+                 search_max_radius_px: float | None = None, tolerance: float = MATCH_TOLERANCE) -> RingAssignment:
+    """Assign observed ring radii (px) to a standard's d-spacings (Å) and propose K (Å·px).
+
+    See the module docstring for the scoring. ``search_min_radius_px`` and
+    ``search_max_radius_px`` bound where a ring could have been seen (beam stop,
+    image edge); a strong standard ring predicted inside them but not observed
+    counts against a proposal.
+    """
+    r = np.asarray(radius_px, dtype=float)
+    d = np.asarray(standard_d_angstrom, dtype=float)
+    inten = np.ones_like(d) if standard_intensity is None else np.asarray(standard_intensity, dtype=float)
+    use = (d > 0) & (inten > 0)
+    d_use, i_use = d[use], inten[use]
+    idx_use = np.flatnonzero(use)
+    if r.size == 0 or d_use.size == 0:
+        return RingAssignment(math.nan, np.zeros(0, int), np.zeros(0, int), -math.inf, np.arange(r.size))
+    strong = i_use >= STRONG_FRACTION * i_use.max()
+    r_hi = search_max_radius_px if search_max_radius_px is not None else r.max() * 1.02
+    proposals = (r[:, None] * d_use[None, :]).ravel()
+    if nominal_camera_constant_A_px:
+        k0 = float(nominal_camera_constant_A_px)
+        proposals = proposals[np.abs(proposals / k0 - 1.0) <= NOMINAL_WINDOW]
+    best = None
+    for k in np.unique(np.round(proposals, 6)):
+        for _ in range(2):  # score, refine K on the matched rings, score again
+            pred = k / d_use  # predicted radii
+            j = np.argmin(np.abs(r[:, None] - pred[None, :]), axis=1)
+            rel = np.abs(r - pred[j]) / pred[j]
+            ok = rel < tolerance
+            # one observed ring per standard ring: keep the closest
+            for jj in np.unique(j[ok]):
+                dup = np.flatnonzero(ok & (j == jj))
+                if dup.size > 1:
+                    ok[dup[dup != dup[np.argmin(rel[dup])]]] = False
+            if ok.sum() == 0:
+                break
+            g = 1.0 / d_use[j[ok]]
+            k = float(np.sum(r[ok] * g) / np.sum(g * g))
+        if ok.sum() == 0:
+            continue
+        pred = k / d_use
+        seen = np.zeros(d_use.size, bool)
+        seen[j[ok]] = True
+        in_range = (pred >= search_min_radius_px) & (pred <= r_hi)
+        missing = strong & in_range & ~seen
+        score = ok.sum() - 0.5 * (~ok).sum() - 1.0 * missing.sum()
+        rms = float(np.sqrt(np.mean(rel[ok] ** 2)))
+        key = (score, -rms)
+        if best is None or key > best[0]:
+            best = (key, k, np.flatnonzero(ok), idx_use[j[ok]], np.flatnonzero(~ok))
+    if best is None:
+        return RingAssignment(math.nan, np.zeros(0, int), np.zeros(0, int), -math.inf, np.arange(r.size))
+    (score, _), k, obs, std, unassigned = best
+    return RingAssignment(camera_constant_A_px=k, observed_index=obs, standard_index=std, score=float(score),
+                          unassigned_observed=unassigned)
+
+
+def fit_camera_constant(points, ring_standard_g_per_A, geometry: Geometry, camera_constant_A_px: float, *,
+                        fit_ellipse: bool = True):
+    """Joint least squares of K, centre, ε and θ on sector points of assigned rings.
+
+    Parameters
+    ----------
+    points : ringid.image.center.SectorPoints
+        Sector measurements; points.ring_index refers to ``ring_standard_g_per_A``
+        entries (1/d in 1/Å of the standard ring each observed ring is assigned to;
+        NaN for rings not assigned, whose points are left out).
+    geometry : Geometry
+        Starting centre and ellipse.
+
+    Returns
+    -------
+    (Geometry, sigmas dict, residuals_px array, used bool array)
+
+    Notes
+    -----
+    Residual per point: (|A⁻¹(p − c)| − K·g_j)/σ with ε and θ parametrised as
+    (ε cos 2θ, ε sin 2θ) so that small ε has no angle singularity. Two passes:
+    points beyond 4 robust standard deviations are dropped after the first.
+    """
+    from scipy.optimize import least_squares
+
+    x, y = points.pixel_positions()
+    g_std = np.asarray(ring_standard_g_per_A, dtype=float)[points.ring_index]
+    use = np.isfinite(g_std)
+    x, y, g_std, sig = x[use], y[use], g_std[use], points.sigma_px[use]
+
+    e0 = geometry.ellipticity
+    t0 = math.radians(2 * geometry.ellipse_angle_deg)
+    p0 = np.array([camera_constant_A_px, geometry.center_x_px, geometry.center_y_px,
+                   e0 * math.cos(t0), e0 * math.sin(t0)])
+
+    def unpack(p):
+        eps = math.hypot(p[3], p[4]) if fit_ellipse else geometry.ellipticity
+        ang = 0.5 * math.degrees(math.atan2(p[4], p[3])) if fit_ellipse else geometry.ellipse_angle_deg
+        return p[0], p[1], p[2], min(eps, 0.5), ang
+
+    def residual(p, keep):
+        k, cx, cy, eps, ang = unpack(p)
+        t = math.radians(ang)
+        c, s = math.cos(t), math.sin(t)
+        root = math.sqrt(1.0 - eps)
+        dx, dy = x[keep] - cx, y[keep] - cy
+        along = c * dx + s * dy
+        across = -s * dx + c * dy
+        r = np.hypot(along * root, across / root)
+        return (r - k * g_std[keep]) / sig[keep]
+
+    keep = np.ones(x.size, bool)
+    n_par = 5 if fit_ellipse else 3
+    for _ in range(2):
+        sol = least_squares(lambda p: residual(np.concatenate([p, p0[n_par:]]), keep), p0[:n_par], method="lm",
+                            x_scale="jac")
+        p_full = np.concatenate([sol.x, p0[n_par:]])
+        res_all = residual(p_full, np.ones(x.size, bool))
+        scale = 1.4826 * np.median(np.abs(res_all[keep]))
+        new_keep = np.abs(res_all) < 4.0 * max(scale, 1e-12)
+        if np.array_equal(new_keep, keep):
+            break
+        keep = new_keep
+    p_full = np.concatenate([sol.x, p0[n_par:]])
+    dof = max(keep.sum() - n_par, 1)
+    chi2 = float(np.sum(sol.fun**2)) / dof
+    jac = sol.jac
+    cov = np.linalg.pinv(jac.T @ jac) * chi2
+    k, cx, cy, eps, ang = unpack(p_full)
+    sig_k = math.sqrt(max(cov[0, 0], 0))
+    sig_c = math.sqrt(max(0.5 * (cov[1, 1] + cov[2, 2]), 0))
+    sig_e = sig_a = math.nan
+    if fit_ellipse:
+        # ε = |(p, q)|, θ = atan2(q, p)/2: propagate the 2×2 block
+        pq = p_full[3:5]
+        sub = cov[3:5, 3:5]
+        if eps > 0:
+            ge = pq / eps
+            ga = np.array([-pq[1], pq[0]]) / eps**2 * 0.5
+            sig_e = math.sqrt(max(ge @ sub @ ge, 0))
+            sig_a = math.degrees(math.sqrt(max(ga @ sub @ ga, 0)))
+        else:
+            sig_e = math.sqrt(max(0.5 * np.trace(sub), 0))
+    geom = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=(ang + 90.0) % 180.0 - 90.0,
+                    camera_constant_A_px=k, voltage_kv=geometry.voltage_kv, center_sigma_px=sig_c)
+    resid_px = residual(p_full, np.ones(x.size, bool)) * sig
+    return geom, {"camera_constant": sig_k, "ellipticity": sig_e, "ellipse_angle_deg": sig_a}, resid_px, keep
+
+
+def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
+    """Pseudo-Voigt FWHM (1/nm) and position of each ring in a 1D profile, on a local linear background.
+
+    Windows are ±3 FWHM around each ring, cut half-way to a neighbour. Returns
+    (fwhm, g_fit, eta) arrays with NaN where a fit failed.
+    """
+    from scipy.optimize import curve_fit
+
+    from ringid.profile.lineshape import unit_pseudo_voigt
+
+    g_all, y_all, s_all = profile.g_per_nm, profile.intensity, profile.sigma
+    centers = np.asarray(g_centers_per_nm, dtype=float)
+    order = np.argsort(centers)
+    fwhm_out = np.full(centers.size, np.nan)
+    g_out = np.full(centers.size, np.nan)
+    eta_out = np.full(centers.size, np.nan)
+    for rank, i in enumerate(order):
+        g0, w0 = centers[i], max(float(fwhm_guess_per_nm[i]), 2 * (g_all[1] - g_all[0]))
+        half = 3.0 * w0
+        if rank > 0:
+            half = min(half, 0.5 * (g0 - centers[order[rank - 1]]))
+        if rank < centers.size - 1:
+            half = min(half, 0.5 * (centers[order[rank + 1]] - g0))
+        sel = (np.abs(g_all - g0) <= half) & np.isfinite(y_all) & (s_all > 0)
+        if sel.sum() < 8:
+            continue
+        gx, yy, ss = g_all[sel], y_all[sel], s_all[sel]
+
+        def model(g, area, center, fwhm, eta, b0, b1):
+            return area * unit_pseudo_voigt(g - center, fwhm, eta) + b0 + b1 * (g - g0)
+
+        b_guess = float(min(yy[0], yy[-1]))
+        a_guess = float(max(np.sum(yy - b_guess) * (gx[1] - gx[0]), 1e-6))
+        step = float(gx[1] - gx[0])
+        lower = [0.0, g0 - half, step, 0.0, -np.inf, -np.inf]
+        upper = [np.inf, g0 + half, 2 * half, 1.0, np.inf, np.inf]
+        p0 = [a_guess, g0, min(max(w0, 1.5 * step), 1.9 * half), 0.3, b_guess, 0.0]
+        try:
+            popt, _ = curve_fit(model, gx, yy, p0=p0, sigma=ss, bounds=(lower, upper), method="trf", maxfev=4000)
+        except (RuntimeError, ValueError):
+            continue
+        if abs(popt[1] - g0) < half and 0 < abs(popt[2]) < 2 * half:
+            fwhm_out[i] = abs(popt[2])
+            g_out[i] = popt[1]
+            eta_out[i] = popt[3]
+    return fwhm_out, g_out, eta_out
+
+
+def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angstrom, *, voltage_kv: float,
+                      standard_intensity=None, standard_hkl=None, nominal_camera_constant_A_px: float | None = None,
+                      center_guess: tuple[float, float] | None = None, standard: str = "",
+                      standard_source: str = "", path=None) -> Calibration:
+    """Calibrate K, centre, ε and θ from a masked pattern of a standard.
+
+    Parameters
+    ----------
+    data, mask : arrays
+        Pattern (counts) and mask (True = excluded), e.g. from :func:`ringid.image.mask.build_mask`.
+    standard_d_angstrom, standard_intensity : array_like
+        The standard's ring d-spacings (Å) and relative intensities (optional).
+    standard_hkl : sequence of str or None
+        Labels for the rings (written to CAL.json).
+    voltage_kv : float
+        Accelerating voltage (kV), recorded.
+    nominal_camera_constant_A_px : float or None
+        Nominal K (e.g. from camera length and pixel size); trusted to ±15 %. None: search.
+
+    Raises
+    ------
+    RingidError
+        When fewer than three rings can be assigned to the standard.
+    """
+    from ringid.image.center import refine_geometry
+    from ringid.image.integrate import integrate_profile
+
+    d_std = np.asarray(standard_d_angstrom, dtype=float)
+    hkl = tuple(standard_hkl) if standard_hkl is not None else tuple("" for _ in d_std)
+    gfit = refine_geometry(data, mask, center_guess=center_guess, fit_ellipse=True, max_rings=16, path=path)
+    radii = gfit.ring_radius_px
+    assignment = assign_rings(radii, d_std, standard_intensity,
+                              nominal_camera_constant_A_px=nominal_camera_constant_A_px,
+                              search_min_radius_px=gfit.min_radius_px, search_max_radius_px=gfit.max_radius_px)
+    n_assigned = assignment.observed_index.size
+    if n_assigned < MIN_ASSIGNED_RINGS:
+        what = standard or "the standard"
+        hint = " within ±15 % of the nominal camera constant" if nominal_camera_constant_A_px else ""
+        raise RingidError(path, f"only {n_assigned} of {radii.size} rings found could be assigned to {what}{hint}; "
+                                f"a calibration needs at least {MIN_ASSIGNED_RINGS}")
+    g_std = np.full(radii.size, np.nan)
+    g_std[assignment.observed_index] = 1.0 / d_std[assignment.standard_index]
+    start = Geometry(center_x_px=gfit.geometry.center_x_px, center_y_px=gfit.geometry.center_y_px,
+                     ellipticity=gfit.geometry.ellipticity, ellipse_angle_deg=gfit.geometry.ellipse_angle_deg,
+                     voltage_kv=float(voltage_kv))
+    geom, sig, resid_px, keep = fit_camera_constant(gfit.points, g_std, start, assignment.camera_constant_A_px)
+
+    # per-ring observed g: mean sector radius at the final geometry over K
+    k = geom.camera_constant_A_px
+    obs = assignment.observed_index
+    ring_idx = gfit.points.ring_index[np.isfinite(g_std[gfit.points.ring_index])]
+    g_obs = np.empty(obs.size)
+    g_sig = np.empty(obs.size)
+    for n, kk in enumerate(obs):
+        sel = (ring_idx == kk) & keep
+        r_true = k * g_std[kk]
+        rr = r_true + resid_px[sel]
+        g_obs[n] = 10.0 * rr.mean() / k
+        g_sig[n] = 10.0 * (rr.std(ddof=1) / math.sqrt(max(sel.sum(), 1)) if sel.sum() > 1 else math.nan) / k
+
+    profile = integrate_profile(data, mask, geom, with_cake=False)
+    fwhm_guess = gfit.ring_fwhm_px[obs] * 10.0 / k
+    fwhm, _, eta = fit_ring_widths(profile, g_obs, fwhm_guess)
+    c0, c1 = _fit_fwhm_line(g_obs, fwhm)
+    instrument_eta = float(np.nanmedian(eta)) if np.isfinite(eta).any() else 0.5
+    flags = list(gfit.flags)
+    notes = [f"{n_assigned} of {radii.size} rings assigned; {int((~keep).sum())} of {keep.size} sector points "
+             f"rejected as outliers"]
+    if assignment.unassigned_observed.size:
+        flags.append("unassigned_rings")
+    order = np.argsort(g_obs)
+    return Calibration(
+        geometry=geom, camera_constant_sigma_A_px=sig["camera_constant"], ellipticity_sigma=sig["ellipticity"],
+        ellipse_angle_sigma_deg=sig["ellipse_angle_deg"],
+        ring_hkl=tuple(hkl[j] for j in assignment.standard_index[order]),
+        ring_d_calc_angstrom=d_std[assignment.standard_index][order], ring_g_obs_per_nm=g_obs[order],
+        ring_g_sigma_per_nm=g_sig[order], ring_fwhm_per_nm=fwhm[order], fwhm_c0_per_nm=c0, fwhm_c1=c1,
+        unassigned_g_per_nm=10.0 * radii[assignment.unassigned_observed] / k, standard=standard,
+        standard_source=standard_source, image="" if path is None else os.fspath(path),
+        instrument_eta=instrument_eta, flags=tuple(flags),
+        notes=tuple(notes))
+
+
+def _fit_fwhm_line(g, fwhm) -> tuple[float, float]:
+    ok = np.isfinite(fwhm) & np.isfinite(g)
+    if ok.sum() >= 3:
+        c1, c0 = np.polyfit(g[ok], fwhm[ok], 1)
+        return float(c0), float(c1)
+    if ok.sum() >= 1:
+        return float(np.median(fwhm[ok])), 0.0
+    return math.nan, math.nan
+
+
+def calibrate_image(image_path, standard_d_angstrom, *, voltage_kv: float, standard_intensity=None,
+                    standard_hkl=None, nominal_camera_constant_A_px: float | None = None, standard: str = "",
+                    standard_source: str = "", user_mask_path=None, frame: int | None = None,
+                    saturation_level: float | None = None) -> Calibration:
+    """Load, mask and calibrate one image of a standard (see :func:`calibrate_pattern`)."""
+    from ringid.image.load import load_image
+    from ringid.image.mask import build_mask, load_user_mask
+
+    img = load_image(image_path, frame=frame)
+    user = load_user_mask(user_mask_path, img.shape) if user_mask_path else None
+    level = img.saturation_level if saturation_level is None else saturation_level
+    masks = build_mask(img.data, invalid=img.invalid, saturation_level=level, user_mask=user)
+    cal = calibrate_pattern(img.data, masks.mask, standard_d_angstrom, voltage_kv=voltage_kv,
+                            standard_intensity=standard_intensity, standard_hkl=standard_hkl,
+                            nominal_camera_constant_A_px=nominal_camera_constant_A_px,
+                            center_guess=masks.rough_center_xy, standard=standard, standard_source=standard_source,
+                            path=image_path)
+    notes = cal.notes + img.notes + masks.notes + tuple(img.warnings)
+    return Calibration(**{**cal.__dict__, "notes": notes})
+
+
+def pyfai_calibrant_rings(name: str, d_min_angstrom: float = 0.7):
+    """(d_angstrom, intensity=None, hkl labels) of a pyFAI calibrant table, e.g. "Au" or "Si".
+
+    pyFAI's tables list d-spacings only (from published lattice parameters); the
+    assignment then treats every ring as equally likely.
+    """
+    import pyFAI.calibrant
+
+    try:
+        cal = pyFAI.calibrant.get_calibrant(name)
+    except Exception:
+        raise RingidError(None, f"pyFAI has no calibrant table named {name!r}") from None
+    d = np.asarray(cal.dspacing, dtype=float)
+    d = d[d >= d_min_angstrom]
+    return d, None, tuple(f"ring {i + 1}" for i in range(d.size))
+
+
+def write_calibration(path, calibration: Calibration, **kw) -> None:
+    """Write CAL.json atomically (:func:`ringid.core.atomic.write_json`)."""
+    from ringid.core.atomic import write_json
+
+    write_json(path, calibration.to_record(**kw))
+
+
+def read_calibration(path) -> tuple[Geometry, dict]:
+    """Read a CAL.json: the Geometry (K, centre, ε, θ, voltage) and the full record."""
+    import json
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            rec = json.load(fh)
+    except FileNotFoundError:
+        raise RingidError(path, "calibration file not found") from None
+    except (OSError, ValueError) as exc:
+        raise RingidError(path, f"unreadable calibration file ({exc})") from None
+    try:
+        geom = Geometry(center_x_px=float(rec["center_x_px"]), center_y_px=float(rec["center_y_px"]),
+                        ellipticity=float(rec.get("ellipticity") or 0.0),
+                        ellipse_angle_deg=float(rec.get("ellipse_angle_deg") or 0.0),
+                        camera_constant_A_px=float(rec["camera_constant_A_px"]),
+                        voltage_kv=float(rec.get("voltage_kv") or math.nan),
+                        center_sigma_px=float(rec.get("center_sigma_px") or math.nan))
+    except (KeyError, TypeError, ValueError) as exc:
+        raise RingidError(path, f"calibration file lacks a usable field ({exc})") from None
+    return geom, rec

@@ -1,0 +1,1 @@
+"""Errors, units, the records passed between stages, and atomic file writes."""

@@ -1,0 +1,1 @@
+"""Phase identification against the library and its decoys."""

@@ -1,0 +1,123 @@
+"""Identification files: the rings table read in, phases.csv, rings.csv and identification.json written out."""
+
+from __future__ import annotations
+
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+
+from ringid.core.errors import RingidError
+from ringid.identify.score import Identification, IdentifySettings, ObservedRings
+
+
+def read_observed_rings(path: str | os.PathLike) -> tuple[ObservedRings, list[dict]]:
+    """Read a rings CSV (columns g_per_nm, g_sigma_per_nm, fwhm_per_nm, area, optional kind);
+    halos (kind = halo) are left out of the returned rings but kept in the rows."""
+    import csv
+
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            rows = list(csv.DictReader(fh))
+    except OSError as exc:
+        raise RingidError(path, f"cannot read rings table ({exc.strerror or exc})") from None
+    need = ("g_per_nm", "g_sigma_per_nm", "fwhm_per_nm", "area")
+    if rows and any(k not in rows[0] for k in need):
+        raise RingidError(path, f"rings table lacks column(s) {', '.join(k for k in need if k not in rows[0])}")
+    sharp_rows = [i for i, r in enumerate(rows) if (r.get("kind") or "ring") == "ring"]
+    sharp = [rows[i] for i in sharp_rows]
+    try:
+        arr = {k: np.array([float(r[k]) for r in sharp], dtype=float) for k in need}
+    except ValueError as exc:
+        raise RingidError(path, f"non-numeric value in rings table ({exc})") from None
+    good = np.isfinite(arr["g_per_nm"]) & (arr["g_per_nm"] > 0) & np.isfinite(arr["area"]) & (arr["area"] > 0)
+    arr["g_sigma_per_nm"] = np.where(np.isfinite(arr["g_sigma_per_nm"]), arr["g_sigma_per_nm"], 0.0)
+    arr["fwhm_per_nm"] = np.where(np.isfinite(arr["fwhm_per_nm"]), arr["fwhm_per_nm"], 0.0)
+    obs = ObservedRings(*(arr[k][good] for k in need), source=str(path), row_index=np.array(sharp_rows, dtype=int)[good])
+    return obs, rows
+
+
+PHASES_COLUMNS = [
+    "rank", "phase", "score", "confidence", "in_answer", "dilation", "dilation_sigma", "n_matched",
+    "n_missing_strong", "missing_strong_rings", "explained_intensity_share", "false_identification_probability",
+    "free_dilation", "free_dilation_sigma", "lattice_mismatch",
+]
+ASSIGNMENT_COLUMNS = ["phase", "hkl", "double_diffraction", "d_calc_angstrom"]
+
+#: dilation window by how the sample's camera constant was obtained (issue 5 defaults)
+WINDOW_BY_CALIBRATION = {"standard": 0.005, "constant": 0.005, "nominal": 0.03}
+
+
+def _fmt(x, digits=6) -> str:
+    if isinstance(x, (bool, np.bool_)):
+        return "true" if x else "false"
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    if isinstance(x, float) and not math.isfinite(x):
+        return ""
+    if isinstance(x, (float, np.floating)):
+        return f"{x:.{digits}g}"
+    return str(x)
+
+
+def _round_sig(x: float, digits: int = 4) -> float | None:
+    """x to ``digits`` significant digits for JSON (None when not finite)."""
+    return float(f"{x:.{digits}g}") if math.isfinite(x) else None
+
+
+def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRings, result: Identification,
+                  settings: IdentifySettings, provenance: dict | None = None) -> None:
+    """Write ``phases.csv``, ``rings.csv`` (input rows + assignment) and ``identification.json``."""
+    from ringid.core.atomic import write_csv, write_json
+
+    out = Path(out_dir)
+    write_csv(out / "phases.csv", PHASES_COLUMNS, (
+        [_fmt(r + 1), c["phase"], _fmt(c["score"], 5), _fmt(c["confidence"], 4), _fmt(c["in_answer"]),
+         _fmt(c["dilation"], 7), _fmt(c["dilation_sigma"], 3), _fmt(c["n_matched"]), _fmt(c["n_missing_strong"]),
+         c["missing_strong_rings"], _fmt(c["explained_intensity_share"], 4),
+         _fmt(c["false_identification_probability"], 3), _fmt(c["free_dilation"], 7), _fmt(c["free_dilation_sigma"], 3),
+         _fmt(c["lattice_mismatch"])]
+        for r, c in enumerate(result.candidates)
+    ))
+    # rings.csv: every input row (halos too) with its assignment; sharp rings in input order
+    if rows:
+        header = list(rows[0].keys())
+    else:
+        from ringid.profile.rings import RINGS_CSV_COLUMNS
+
+        header = list(RINGS_CSV_COLUMNS)
+    header = [h for h in header if h not in ASSIGNMENT_COLUMNS] + ASSIGNMENT_COLUMNS
+    row_of = obs.row_index if obs.row_index is not None else np.arange(len(obs))
+    by_row = {int(r): a for r, a in zip(row_of, result.assignments)}
+    out_rows = []
+    for k, r in enumerate(rows):
+        asg = by_row.get(k)
+        extra = ([asg.phase, asg.hkl, _fmt(asg.double_diffraction), _fmt(asg.d_calc_angstrom, 7)] if asg else ["", "", "", ""])
+        out_rows.append([r.get(h, "") for h in header[: -len(ASSIGNMENT_COLUMNS)]] + extra)
+    write_csv(out / "rings.csv", header, out_rows)
+    record = {
+        "phases": list(result.phases),
+        "confidence": [round(c, 6) for c in result.confidence],
+        "alternatives": [list(a) for a in result.alternatives],
+        "separation_sigma": [round(s, 3) if math.isfinite(s) else None for s in result.separation_sigma],
+        "fractions_rough": [round(f, 4) if math.isfinite(f) else None for f in result.fractions_rough],
+        "refined_lattice": [{k: (round(v, 7) if isinstance(v, float) and math.isfinite(v) else None) for k, v in r.items()}
+                            for r in result.refined],
+        "false_identification_probability": [_round_sig(p) for p in result.false_identification_probability],
+        "unexplained_rings": result.unexplained_rings,
+        "unexplained_intensity_share": round(result.unexplained_intensity_share, 4),
+        "cubic_lattice_angstrom": _round_sig(result.cubic_lattice_angstrom, 6) if result.cubic_lattice_angstrom else None,
+        "lattice_mismatch": [{k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()}
+                             for m in result.lattice_mismatches],
+        "not_significant": [{k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()} for m in result.rejected],
+        "unexplained": [{"g_per_nm": round(float(obs.g_per_nm[i]), 6), "d_angstrom": round(10.0 / float(obs.g_per_nm[i]), 6),
+                         "area": float(obs.area[i])} for i in result.unexplained],
+        "flags": list(result.flags),
+        "settings": {k: getattr(settings, k) for k in settings.__dataclass_fields__},
+        "screening_note": "Phase identification is a screening result; confirm critical assignments by independent means.",
+    }
+    if provenance:
+        record["provenance"] = provenance
+    write_json(out / "identification.json", record)

@@ -1,0 +1,347 @@
+"""Pixel masks found automatically: saturation, hot/dead pixels, beam-stop shadow, borders, user mask.
+
+A mask is a bool array, True where a pixel is excluded. :func:`build_mask`
+combines them and counts what each one removed.
+
+- Saturated: pixels at or above the saturation level (the source dtype's maximum
+  or a configured level), grown by one pixel (charge spills into neighbours).
+- Hot / dead: isolated outliers. A hot pixel exceeds the largest of its eight
+  neighbours, a dead pixel falls below the smallest of them, by ``outlier_sigma``
+  noise standard deviations at the local level (the noise gain is estimated
+  from the image itself, robustly). Comparing with the neighbour extremes rather
+  than the neighbour median keeps ring crests and diffraction spots, which always
+  have a bright neighbour, unmasked.
+- Beam stop: a dark connected region that reaches the direct beam. On a
+  block-averaged image, pixels far below the azimuthal median at their radius
+  (the rod) or inside the dark central disc are dark; the connected dark
+  component touching the centre is the shadow (its rod may run to any edge).
+- Borders: ``border_px`` pixels on each edge, plus edge rows/columns that are constant.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+
+import numpy as np
+
+from ringid.core.errors import RingidError
+
+
+@dataclass(frozen=True)
+class MaskResult:
+    """The combined mask (True = excluded) and what each part removed (pixel counts)."""
+
+    mask: np.ndarray
+    n_invalid: int
+    n_saturated: int
+    n_hot: int
+    n_dead: int
+    n_beam_stop: int
+    n_border: int
+    n_user: int
+    beam_stop: np.ndarray | None
+    rough_center_xy: tuple[float, float] | None
+    notes: tuple[str, ...] = ()
+
+    @property
+    def fraction_masked(self) -> float:
+        return float(self.mask.mean())
+
+
+def saturated_mask(data: np.ndarray, level: float) -> np.ndarray:
+    """Pixels at or above ``level``, grown by one pixel (8-connected)."""
+    from scipy import ndimage
+
+    sat = data >= np.float32(level)
+    if sat.any():
+        ys, xs = np.nonzero(sat)
+        y0, y1 = max(ys.min() - 1, 0), min(ys.max() + 2, data.shape[0])
+        x0, x1 = max(xs.min() - 1, 0), min(xs.max() + 2, data.shape[1])
+        sat[y0:y1, x0:x1] = ndimage.binary_dilation(sat[y0:y1, x0:x1], structure=np.ones((3, 3), bool))
+    return sat
+
+
+def _neighbour_extremes_rows(block: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Max and min of the eight neighbours for the inner rows of ``block`` (its first and last
+    rows are the halo); columns reflected at the edges."""
+    p = np.pad(block, ((0, 0), (1, 1)), mode="reflect")
+    n, nx = block.shape[0] - 2, block.shape[1]
+    hi = lo = None
+    for dy in (0, 1, 2):
+        for dx in (0, 1, 2):
+            if dy == 1 and dx == 1:
+                continue
+            v = p[dy : dy + n, dx : dx + nx]
+            if hi is None:
+                hi, lo = v.copy(), v.copy()
+            else:
+                np.maximum(hi, v, out=hi)
+                np.minimum(lo, v, out=lo)
+    return hi, lo
+
+
+def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: int = 200_000, seed: int = 0) -> float:
+    """Variance per unit signal (1 for Poisson counts) from differences of horizontal neighbours.
+
+    For counts with variance g·μ, (x_i − x_{i+1})² has mean 2gμ; the median ratio of
+    (x_i − x_{i+1})² to (x_i + x_{i+1}) is 0.455·g for a χ²₁ variable (a robust estimate).
+    """
+    a = data[:, :-1].reshape(-1)
+    b = data[:, 1:].reshape(-1)
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, a.size, min(n_sample, a.size))
+    x, y = a[idx].astype(np.float64), b[idx].astype(np.float64)
+    if valid is not None:
+        keep = valid[:, :-1].reshape(-1)[idx] & valid[:, 1:].reshape(-1)[idx]
+        x, y = x[keep], y[keep]
+    level = x + y
+    keep = level > 2.0
+    if keep.sum() < 100:
+        return 1.0
+    ratio = (x[keep] - y[keep]) ** 2 / level[keep]
+    gain = float(np.median(ratio)) / 0.4549
+    return gain if gain > 0 else 1.0
+
+
+def outlier_pixel_mask(data: np.ndarray, valid: np.ndarray | None = None, *, outlier_sigma: float = 8.0,
+                       gain: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Hot and dead pixels: isolated outliers against all eight neighbours.
+
+    Returns (hot, dead) bool arrays. A hot pixel stands ``outlier_sigma`` noise
+    standard deviations √(g·max(level, 1)) above its brightest neighbour and is more
+    than twice as bright; a dead pixel the same below its darkest neighbour and
+    less than half of it (8σ keeps false alarms below about one per 10⁷ pixels for
+    Poisson counts; common practice for defect maps, not a published value).
+    """
+    d = data.astype(np.float32, copy=False)
+    if gain is None:
+        gain = noise_gain(d, valid)
+    k = np.float32(outlier_sigma)
+    g = np.float32(gain)
+    hot = np.zeros(d.shape, bool)
+    dead = np.zeros(d.shape, bool)
+    ny = d.shape[0]
+    rows_per_block = max(1, (1 << 21) // max(d.shape[1], 1))  # ~8 MB float32 temporaries per block
+    for y0 in range(0, ny, rows_per_block):
+        y1 = min(y0 + rows_per_block, ny)
+        # one row of halo on each side (reflected at the image edges, as np.pad does)
+        lo_y, hi_y = max(y0 - 1, 0), min(y1 + 1, ny)
+        block = d[lo_y:hi_y]
+        if y0 == 0:
+            block = np.concatenate([d[1:2], block]) if ny > 1 else np.concatenate([block, block])
+        if y1 == ny:
+            block = np.concatenate([block, d[ny - 2 : ny - 1]]) if ny > 1 else np.concatenate([block, block])
+        hi, lo = _neighbour_extremes_rows(block)
+        dd = d[y0:y1]
+        hot[y0:y1] = ((dd - hi) > k * np.sqrt(g * np.maximum(hi, 1.0)) + 2 * g) & (dd > 2.0 * hi)
+        dead[y0:y1] = ((lo - dd) > k * np.sqrt(g * np.maximum(lo, 1.0)) + 2 * g) & (dd < 0.5 * lo)
+    if valid is not None:
+        hot &= valid
+        dead &= valid
+    return hot, dead
+
+
+def border_mask(data: np.ndarray, border_px: int = 2) -> np.ndarray:
+    """``border_px`` pixels along each edge, plus constant edge rows/columns (padding)."""
+    m = np.zeros(data.shape, bool)
+    if border_px > 0:
+        m[:border_px] = m[-border_px:] = True
+        m[:, :border_px] = m[:, -border_px:] = True
+    ny, nx = data.shape
+    for axis_rows in (True, False):
+        n = ny if axis_rows else nx
+        for order in (range(n), range(n - 1, -1, -1)):
+            for i in order:
+                line = data[i] if axis_rows else data[:, i]
+                if line.size and np.all(line == line[0]):
+                    if axis_rows:
+                        m[i] = True
+                    else:
+                        m[:, i] = True
+                else:
+                    break
+    return m
+
+
+def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: float, center_y_px: float, *,
+                   dark_fraction: float = 0.15, block: int | None = None) -> np.ndarray:
+    """Shadow of the beam stop: the dark connected region that reaches the direct beam.
+
+    Parameters
+    ----------
+    data : (ny, nx) array
+    valid : bool array or None
+        False for pixels already excluded (they count as neither dark nor bright).
+    center_x_px, center_y_px : float
+        Approximate pattern centre (a few px is enough).
+    dark_fraction : float
+        A block is dark when below this fraction of the azimuthal median at its
+        radius (a shadow transmits a few % at most).
+
+    Returns
+    -------
+    bool array, True in the shadow (empty when there is no beam stop).
+    """
+    from scipy import ndimage
+
+    from ringid.image.center import block_mean
+
+    ny, nx = data.shape
+    if block is None:
+        block = max(1, int(math.ceil(max(ny, nx) / 384)))
+    small, frac = block_mean(data, valid, block)
+    my, mx = small.shape
+    yy = (np.arange(my) * block + (block - 1) / 2.0 - center_y_px)[:, None]
+    xx = (np.arange(mx) * block + (block - 1) / 2.0 - center_x_px)[None, :]
+    r = np.sqrt(xx * xx + yy * yy)
+    rb = (r / block).astype(np.int64)
+    ok = frac > 0.5
+    # smooth over enough tiles that the dimmest (outer) region holds ≥ 12 counts per window,
+    # so that "dark" is not decided by Poisson zeros; at most 16 px so that a rod stays resolved
+    outer = ok & (r >= np.percentile(r[ok], 80)) if ok.any() else ok
+    level = float(small[outer].mean()) if outer.any() else 0.0
+    n_s = int(math.ceil(math.sqrt(12.0 / max(level * block * block, 1e-6))))
+    n_s = int(min(max(n_s, 1), max(16 // block, 1)))
+    if n_s > 1:
+        w = ok.astype(np.float32)
+        num = ndimage.uniform_filter(np.where(ok, small, 0).astype(np.float32), n_s, mode="constant")
+        den = ndimage.uniform_filter(w, n_s, mode="constant")
+        small = np.where(den > 0, num / np.maximum(den, 1e-6), 0).astype(np.float32)
+    nb = int(rb.max()) + 1
+    med = _binned_quantile(rb[ok], small[ok].astype(np.float64), nb, 0.5)
+    # where only a short arc of an annulus lies inside the image (corners) the rod can be
+    # half of it: there the 80th percentile stands for the unshadowed level
+    n_tiles = np.bincount(rb[ok], minlength=nb)
+    arc = n_tiles / np.maximum(2 * np.pi * (np.arange(nb) + 0.5), 1.0)
+    high = _binned_quantile(rb[ok], small[ok].astype(np.float64), nb, 0.8)
+    med = np.where(arc < 0.5, high, med)
+    # the central disc: inner radii whose median is dark against the brightest median just outside
+    inner = int(0.25 * min(my, mx))
+    head = med[: max(inner, 2)]
+    peak = float(np.nanmax(head)) if np.isfinite(head).any() else 0.0
+    disc_r = 0
+    if peak > 0:
+        # radii with no valid tile (a masked saturated beam) do not count as dark
+        bright = np.flatnonzero(~(head < dark_fraction * peak))
+        disc_r = int(bright[0]) if bright.size else 0
+    ref = np.nan_to_num(med, nan=0.0)[np.minimum(rb, nb - 1)]
+    dark = ok & ((small < dark_fraction * ref) | (rb < disc_r))
+    if not dark.any():
+        return np.zeros(data.shape, bool)
+    # connect across one-tile gaps (a bright ring seen through the stop's few % transmission)
+    bridged = dark | ndimage.binary_closing(dark, structure=np.ones((3, 3), bool), iterations=2)
+    labels, n = ndimage.label(bridged, structure=np.ones((3, 3), bool))
+    near_center = r < max(2.0 * block, 1.5 * disc_r * block + block)
+    touching = np.unique(labels[near_center & bridged])
+    touching = touching[touching > 0]
+    if touching.size == 0:
+        return np.zeros(data.shape, bool)
+    shadow_small = np.isin(labels, touching) & bridged
+    shadow_small = ndimage.binary_fill_holes(shadow_small)
+    # a margin of one tile plus half the smoothing window covers the penumbra and the cut tiles
+    shadow_small = ndimage.binary_dilation(shadow_small, structure=np.ones((3, 3), bool), iterations=1 + n_s // 2)
+    full = np.zeros(data.shape, bool)
+    up = np.repeat(np.repeat(shadow_small, block, axis=0), block, axis=1)
+    full[: up.shape[0], : up.shape[1]] = up
+    # rows/columns beyond the last whole tile copy their neighbour
+    if up.shape[0] < ny:
+        full[up.shape[0]:, : up.shape[1]] = up[-1:, :]
+    if up.shape[1] < nx:
+        full[:, up.shape[1]:] = full[:, up.shape[1] - 1 : up.shape[1]]
+    return full
+
+
+def _binned_quantile(bins: np.ndarray, values: np.ndarray, n_bins: int, q: float) -> np.ndarray:
+    """Quantile ``q`` of ``values`` per integer bin (nearest rank; NaN for empty bins)."""
+    order = np.lexsort((values, bins))
+    b, v = bins[order], values[order]
+    starts = np.searchsorted(b, np.arange(n_bins), side="left")
+    ends = np.searchsorted(b, np.arange(n_bins), side="right")
+    out = np.full(n_bins, np.nan)
+    has = ends > starts
+    pick = (starts + np.floor(q * (ends - starts - 1) + 0.5).astype(np.int64))[has]
+    out[has] = v[pick]
+    return out
+
+
+def load_user_mask(path: str | os.PathLike, shape: tuple[int, int]) -> np.ndarray:
+    """Read a user mask image (TIFF or .npy; non-zero = excluded) of the pattern's shape."""
+    from ringid.image.load import load_image
+
+    m = load_image(path)
+    if m.data.shape != tuple(shape):
+        raise RingidError(path, f"mask of {m.data.shape[1]}×{m.data.shape[0]} px does not match the image "
+                                f"({shape[1]}×{shape[0]} px)")
+    return m.data != 0
+
+
+def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturation_level: float = math.nan,
+               user_mask: np.ndarray | None = None, border_px: int = 2, detect_beam_stop: bool = True,
+               detect_outliers: bool = True, outlier_sigma: float = 8.0,
+               center_hint: tuple[float, float] | None = None) -> MaskResult:
+    """Combine all masks for one pattern.
+
+    Parameters
+    ----------
+    data : (ny, nx) float32
+    invalid : bool array or None
+        NaN/inf pixels from loading.
+    saturation_level : float
+        Counts at which the detector saturates (NaN: none known, skip).
+    user_mask : bool array or None
+        Extra pixels to exclude (True = excluded).
+    border_px : int
+        Edge pixels to drop on every side.
+    detect_beam_stop, detect_outliers : bool
+        Switch the automatic beam-stop and hot/dead detection.
+    center_hint : (x, y) or None
+        Approximate centre for the beam-stop search; None finds one by point symmetry.
+    """
+    notes: list[str] = []
+    mask = np.zeros(data.shape, bool) if invalid is None else invalid.copy()
+    n_invalid = int(mask.sum())
+    n_sat = 0
+    if np.isfinite(saturation_level):
+        sat = saturated_mask(data, saturation_level)
+        n_sat = int((sat & ~mask).sum())
+        mask |= sat
+    border = border_mask(data, border_px)
+    n_border = int((border & ~mask).sum())
+    mask |= border
+    n_user = 0
+    if user_mask is not None:
+        n_user = int((user_mask & ~mask).sum())
+        mask |= user_mask
+    n_hot = n_dead = 0
+    if detect_outliers:
+        hot, dead = outlier_pixel_mask(data, ~mask, outlier_sigma=outlier_sigma)
+        n_hot, n_dead = int(hot.sum()), int(dead.sum())
+        mask |= hot
+        mask |= dead
+    shadow = None
+    n_bs = 0
+    rough = center_hint
+    if detect_beam_stop:
+        if rough is None:
+            from ringid.image.center import coarse_center
+
+            cc = coarse_center(data, mask)
+            rough = (cc.center_x_px, cc.center_y_px)
+        shadow = beam_stop_mask(data, ~mask, rough[0], rough[1])
+        n_bs = int((shadow & ~mask).sum())
+        if n_bs:
+            notes.append(f"beam stop shadow masked ({n_bs} px)")
+            mask |= shadow
+            if center_hint is None:
+                # the shadow breaks the point symmetry: find the centre again without it
+                from ringid.image.center import coarse_center
+
+                cc = coarse_center(data, mask)
+                rough = (cc.center_x_px, cc.center_y_px)
+        else:
+            shadow = None
+    return MaskResult(mask=mask, n_invalid=n_invalid, n_saturated=n_sat, n_hot=n_hot, n_dead=n_dead,
+                      n_beam_stop=n_bs, n_border=n_border, n_user=n_user, beam_stop=shadow,
+                      rough_center_xy=rough, notes=tuple(notes))

@@ -1,0 +1,256 @@
+"""The phase library: kinematic electron ring lists computed from CIF files.
+
+What this stage does: for one crystal (``ringid.library.cif.Crystal``) enumerate every reflection
+with d ≥ d_min, compute its kinematic electron structure factor
+
+    F(hkl) = Σ_j occ_j · f_j(s) · exp(−B_j s²) · exp(2πi (h x_j + k y_j + l z_j)),
+    s = sinθ/λ = 1/(2d),  B_j = 8π² U_j,
+
+over every atom of the unit cell, with the five-Gaussian electron scattering factors
+f(s) = Σ_{i=1..5} a_i exp(−b_i s²) of International Tables for Crystallography Vol. C
+(2011), Table 4.3.2.2 (Peng, Ren, Dudarev & Whelan 1996, Acta Cryst. A52, 257), taken
+from gemmi's ``Element.c4322``; merge reflections of equal d into rings; and give each
+ring the intensity Σ|F|²·d² (its integrated area over g in an azimuthal-mean profile:
+Vainshtein 1964, Structure Analysis by Electron Diffraction) normalised so that the
+strongest ring is 100.
+
+Kinematically forbidden reflections that are the sum of two allowed reflections of the
+same phase (glide, screw and special-position absences; never lattice-centring absences)
+can appear by double diffraction; rings made only of them are kept with intensity 0 and
+``double_diffraction = True``.
+
+What it does not do: dynamical intensities, texture or absorption.
+
+The library's files are written and read by ``ringid.library.store``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ringid.core.errors import RingidError
+from ringid.core.model import PhaseRings
+
+DEFAULT_D_MIN_ANGSTROM = 0.5
+DEFAULT_MERGE_TOLERANCE = 1e-4  # relative difference in d below which reflections share a ring
+
+#: Reflections with |F|² below this fraction of the strongest are kinematically forbidden.
+FORBIDDEN_F2_FRACTION = 1e-10
+
+SCATTERING_TABLE = "ITC Vol. C Table 4.3.2.2 (Peng et al. 1996), gemmi Element.c4322"
+
+
+@dataclass(frozen=True)
+class Reflections:
+    """Every reflection of a phase with d ≥ d_min (Friedel mates included).
+
+    hkl has shape (n, 3); d_angstrom and f_squared (|F|², Å²) shape (n,).
+    """
+
+    hkl: np.ndarray
+    d_angstrom: np.ndarray
+    f_squared: np.ndarray
+
+
+# --------------------------------------------------------------------------- physics
+
+
+def electron_scattering_factors(elements, s2_per_angstrom2: np.ndarray) -> np.ndarray:
+    """Electron scattering factors f_e(s) in Å for each element at s² = (sinθ/λ)² (1/Å²).
+
+    Five-Gaussian fit of ITC Vol. C Table 4.3.2.2 (gemmi ``Element.c4322``), valid for
+    s ≤ 2 Å⁻¹, neutral atoms, without the relativistic factor γ. Returns shape
+    (len(s2), len(elements)).
+    """
+    import gemmi
+
+    out = np.empty((len(s2_per_angstrom2), len(elements)))
+    for j, symbol in enumerate(elements):
+        coefs = np.asarray(gemmi.Element(symbol).c4322.get_coefs(), dtype=float)
+        a, b = coefs[:5], coefs[5:]
+        out[:, j] = np.exp(-np.multiply.outer(s2_per_angstrom2, b)) @ a
+    return out
+
+
+def reciprocal_metric(cell) -> np.ndarray:
+    """Reciprocal metric tensor G* (1/Å²) so that 1/d² = hᵀ G* h."""
+    a, b, c, al, be, ga = cell
+    ca, cb, cg = (math.cos(math.radians(x)) for x in (al, be, ga))
+    g = np.array([[a * a, a * b * cg, a * c * cb], [a * b * cg, b * b, b * c * ca], [a * c * cb, b * c * ca, c * c]])
+    return np.linalg.inv(g)
+
+
+def enumerate_hkl(cell, d_min_angstrom: float) -> tuple[np.ndarray, np.ndarray]:
+    """All integer hkl ≠ 000 with d ≥ d_min; returns (hkl (n, 3) int, d (n,) Å)."""
+    gstar = reciprocal_metric(cell)
+    g_max = 1.0 / d_min_angstrom
+    # |h| = |g · a| ≤ g_max |a|, likewise k, l
+    lim = np.floor(np.array(cell[:3]) * g_max).astype(int)
+    axes = [np.arange(-n, n + 1) for n in lim]
+    hkl = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
+    inv_d2 = np.einsum("ni,ij,nj->n", hkl, gstar, hkl)
+    keep = (inv_d2 > 0) & (inv_d2 <= g_max**2 * (1 + 1e-12))
+    return hkl[keep], 1.0 / np.sqrt(inv_d2[keep])
+
+
+def centring_absent(hkl: np.ndarray, centring_vectors) -> np.ndarray:
+    """True where the lattice centring extinguishes hkl (h·t not an integer for some t)."""
+    absent = np.zeros(len(hkl), dtype=bool)
+    for t in centring_vectors:
+        if any(t):
+            phase = hkl @ np.asarray(t)
+            absent |= np.abs(phase - np.round(phase)) > 1e-6
+    return absent
+
+
+def structure_factors(crystal, hkl: np.ndarray, d_angstrom: np.ndarray) -> np.ndarray:
+    """Kinematic electron structure factors F(hkl) (complex, Å) of every reflection.
+
+    Vectorised over reflections × atoms; the element scattering factors are evaluated
+    once per element and reflection.
+    """
+    s2 = 0.25 / d_angstrom**2
+    unique = sorted(set(crystal.elements))
+    f_el = electron_scattering_factors(unique, s2)  # (n_refl, n_el)
+    col = np.array([unique.index(e) for e in crystal.elements])
+    b_iso = 8.0 * math.pi**2 * crystal.u_iso_angstrom2  # (n_at,)
+    weight = f_el[:, col] * crystal.occupancy * np.exp(-np.multiply.outer(s2, b_iso))
+    F = np.empty(len(hkl), dtype=complex)
+    chunk = max(1, 4_000_000 // max(1, len(crystal.elements)))
+    for start in range(0, len(hkl), chunk):
+        sl = slice(start, start + chunk)
+        phase = 2.0 * math.pi * (hkl[sl].astype(float) @ crystal.fract.T)
+        F[sl] = (weight[sl] * np.cos(phase)).sum(axis=1) + 1j * (weight[sl] * np.sin(phase)).sum(axis=1)
+    return F
+
+
+def compute_reflections(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM) -> Reflections:
+    """Every reflection not extinguished by the lattice centring, with its |F|²."""
+    hkl, d = enumerate_hkl(crystal.cell, d_min_angstrom)
+    keep = ~centring_absent(hkl, crystal.centring_vectors)
+    hkl, d = hkl[keep], d[keep]
+    f2 = np.abs(structure_factors(crystal, hkl, d)) ** 2
+    return Reflections(hkl=hkl, d_angstrom=d, f_squared=f2)
+
+
+def double_diffraction_possible(hkl: np.ndarray, forbidden: np.ndarray) -> np.ndarray:
+    """For each forbidden reflection, whether it is the sum of two allowed reflections.
+
+    Both partners must lie in the enumerated set (d ≥ d_min). Low-order partners are
+    tried first, which settles nearly every case after one pass.
+    """
+    allowed = hkl[~forbidden]
+    cand_idx = np.flatnonzero(forbidden)
+    result = np.zeros(len(hkl), dtype=bool)
+    if len(cand_idx) == 0 or len(allowed) == 0:
+        return result
+    off = int(np.abs(hkl).max()) * 2 + 1
+    base = 2 * off + 1
+
+    def key(v):
+        v = v + off
+        return (v[..., 0] * base + v[..., 1]) * base + v[..., 2]
+
+    allowed_keys = np.sort(key(allowed))
+    order = np.argsort(np.einsum("ni,ni->n", allowed, allowed))  # crude |h| order for speed
+    partners = allowed[order]
+    todo = cand_idx
+    for start in range(0, len(partners), 64):
+        if len(todo) == 0:
+            break
+        p = partners[start : start + 64]
+        rest = hkl[todo][:, None, :] - p[None, :, :]  # (n_todo, n_p, 3)
+        k = key(rest)
+        pos = np.searchsorted(allowed_keys, k)
+        pos = np.clip(pos, 0, len(allowed_keys) - 1)
+        hit = (allowed_keys[pos] == k).any(axis=1)
+        result[todo[hit]] = True
+        todo = todo[~hit]
+    return result
+
+
+def hkl_label(hkl, hexagonal: bool) -> str:
+    """Index label, four-index (h k i l) with i = −(h+k) on hexagonal axes."""
+    h, k, l = (int(x) for x in hkl)
+    if hexagonal:
+        return f"{h} {k} {-(h + k)} {l}"
+    return f"{h} {k} {l}"
+
+
+def _representative(hkl: np.ndarray, f2: np.ndarray) -> np.ndarray:
+    """The index that names a ring: strongest family, most non-negative indices, then largest."""
+    strength = np.round(f2 / max(f2.max(), 1e-300), 3)  # robust to rounded coordinates (0.3333)
+    nonneg = (hkl >= 0).sum(axis=1)
+    order = np.lexsort((hkl[:, 2], hkl[:, 1], hkl[:, 0], nonneg, strength))
+    return hkl[order[-1]]
+
+
+def ring_list(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM, merge_tolerance: float = DEFAULT_MERGE_TOLERANCE):
+    """Compute the ring list of a crystal.
+
+    Returns
+    -------
+    rings : PhaseRings
+    reflections : Reflections
+    ring_of_reflection : ndarray of int
+        Ring index of each reflection (−1 for a forbidden reflection that no double
+        diffraction can light up).
+    """
+    refl = compute_reflections(crystal, d_min_angstrom)
+    if len(refl.d_angstrom) == 0:
+        raise RingidError(crystal.path, f"no reflection with d ≥ {d_min_angstrom} Å")
+    f2max = refl.f_squared.max()
+    if not f2max > 0:
+        raise RingidError(crystal.path, "every structure factor is zero")
+    forbidden = refl.f_squared < FORBIDDEN_F2_FRACTION * f2max
+    dd = double_diffraction_possible(refl.hkl, forbidden)
+    usable = ~forbidden | dd
+
+    order = np.argsort(-refl.d_angstrom, kind="stable")
+    order = order[usable[order]]
+    d_sorted = refl.d_angstrom[order]
+    # merge: a new ring starts where d falls more than the tolerance below the ring's first d
+    ring_id = np.empty(len(order), dtype=int)
+    current, first = -1, None
+    for i, d in enumerate(d_sorted):
+        if first is None or (first - d) > merge_tolerance * first:
+            current += 1
+            first = d
+        ring_id[i] = current
+    n_rings = current + 1
+    ring_of_reflection = np.full(len(refl.d_angstrom), -1)
+    ring_of_reflection[order] = ring_id
+
+    hexagonal = crystal.is_hexagonal_axes
+    d_ring = np.zeros(n_rings)
+    inten = np.zeros(n_rings)
+    f2sum = np.zeros(n_rings)
+    mult = np.zeros(n_rings, dtype=int)
+    is_dd = np.zeros(n_rings, dtype=bool)
+    labels = []
+    bounds = np.flatnonzero(np.diff(ring_id)) + 1
+    for r, members in enumerate(np.split(order, bounds)):
+        allowed = members[~forbidden[members]]
+        d_ring[r] = refl.d_angstrom[members].mean()
+        mult[r] = len(allowed) if len(allowed) else len(members)
+        if len(allowed):
+            f2sum[r] = refl.f_squared[allowed].sum()
+            inten[r] = (refl.f_squared[allowed] * refl.d_angstrom[allowed] ** 2).sum()
+            labels.append(hkl_label(_representative(refl.hkl[allowed], refl.f_squared[allowed]), hexagonal))
+        else:
+            is_dd[r] = True
+            labels.append(hkl_label(_representative(refl.hkl[members], np.ones(len(members))), hexagonal))
+    inten = 100.0 * inten / inten.max()
+    rings = PhaseRings(
+        phase=crystal.phase,
+        d_angstrom=d_ring,
+        intensity=inten,
+        multiplicity=mult,
+        hkl=tuple(labels),
+        double_diffraction=is_dd,
+        meta={"f_squared_sum": f2sum},
+    )
+    return rings, refl, ring_of_reflection

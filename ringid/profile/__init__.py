@@ -1,0 +1,1 @@
+"""The 1D profile: line shapes, background, ring detection and fitting."""

@@ -1,0 +1,1 @@
+"""summary.csv, report.html and the figures."""

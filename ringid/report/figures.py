@@ -1,0 +1,160 @@
+"""Figures: the per-sample overview and the calibration residual plot (matplotlib, Agg).
+
+Figures are drawn at screen resolution (about 900 × 340 px, 40–80 kB per sample) so a
+report of 500 samples stays light. Imported only by the jobs that draw.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+
+PHASE_COLOURS = ["#c0392b", "#2471a3", "#1e8449", "#7d3c98", "#b9770e"]
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def make_thumbnail(image: np.ndarray, mask: np.ndarray | None = None, size_px: int = 256) -> tuple[np.ndarray, int]:
+    """Block-mean downsampled, log-scaled uint8 thumbnail and its binning factor (px per thumbnail px)."""
+    ny, nx = image.shape
+    b = max(1, int(math.ceil(max(ny, nx) / size_px)))
+    my, mx = ny // b, nx // b
+    data = np.asarray(image[: my * b, : mx * b], dtype=np.float32)
+    if mask is not None:
+        data = np.where(mask[: my * b, : mx * b], np.nan, data)
+    import warnings
+
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-masked blocks are NaN, as intended
+        blocks = np.nanmean(data.reshape(my, b, mx, b), axis=(1, 3))
+    finite = np.isfinite(blocks)
+    if not finite.any():
+        return np.zeros((my, mx), np.uint8), b
+    lo = np.nanpercentile(blocks, 1)
+    logd = np.log10(np.clip(np.where(finite, blocks, lo) - lo + 1.0, 1.0, None))
+    top = np.percentile(logd, 99.7) or 1.0
+    return (np.clip(logd / top, 0, 1) * 255).astype(np.uint8), b
+
+
+def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray | None, bin_px: int, geometry: dict,
+                 profile: dict | None, rings: list[dict], references: list[tuple[str, object, float]]) -> None:
+    """Write the overview figure of one sample.
+
+    Parameters
+    ----------
+    thumbnail, bin_px : the log-scaled thumbnail and its binning factor.
+    geometry : dict with center_x_px, center_y_px, ellipticity, ellipse_angle_deg, camera_constant_A_px.
+    profile : dict of arrays g_per_nm, intensity, background, model (any may be missing).
+    rings : rows of rings.csv (g_per_nm, kind, phase, hkl).
+    references : (phase id, PhaseRings, dilation) of the identified phases.
+    """
+
+    plt = _pyplot()
+    fig = plt.figure(figsize=(9.0, 3.4), dpi=100)
+    ax_img = fig.add_axes([0.01, 0.04, 0.27, 0.86])
+    ax = fig.add_axes([0.36, 0.14, 0.62, 0.76])
+    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
+    ax_img.set_axis_off()
+    if thumbnail is not None and thumbnail.size:
+        ax_img.imshow(thumbnail, cmap="magma", origin="upper", interpolation="nearest")
+        k = geometry.get("camera_constant_A_px")
+        cx, cy = geometry.get("center_x_px"), geometry.get("center_y_px")
+        if k and cx is not None and cy is not None and all(map(math.isfinite, (k, cx, cy))):
+            from matplotlib.patches import Ellipse
+
+            eps = float(geometry.get("ellipticity") or 0.0)
+            ang = float(geometry.get("ellipse_angle_deg") or 0.0)
+            for r in rings:
+                try:
+                    g = float(r["g_per_nm"])
+                except (KeyError, ValueError):
+                    continue
+                radius = k * g / 10.0 / bin_px
+                a, b = radius / math.sqrt(1 - eps), radius * math.sqrt(1 - eps)
+                colour = "#7fdbff" if r.get("kind", "ring") == "halo" else "#ffffff"
+                ax_img.add_patch(Ellipse(((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5), 2 * a, 2 * b, angle=ang,
+                                         fill=False, lw=0.6, ec=colour, alpha=0.9, ls=(0, (2, 2))))
+            ax_img.set_xlim(-0.5, thumbnail.shape[1] - 0.5)
+            ax_img.set_ylim(thumbnail.shape[0] - 0.5, -0.5)
+    if profile and len(profile.get("g_per_nm", [])):
+        g = np.asarray(profile["g_per_nm"], float)
+        y = np.asarray(profile["intensity"], float)
+        ax.plot(g, y, color="#222", lw=0.7, label="profile")
+        if "background" in profile:
+            ax.plot(g, profile["background"], color="#888", lw=0.8, ls="--", label="background")
+        if "model" in profile:
+            ax.plot(g, profile["model"], color="#e67e22", lw=0.8, label="fit")
+        finite = y[np.isfinite(y) & (y > 0)]
+        if finite.size:
+            from matplotlib.ticker import LogFormatter, NullLocator
+
+            ax.set_yscale("log")
+            ax.yaxis.set_minor_locator(NullLocator())  # decades only (minor log ticks cost half the drawing)
+            ax.yaxis.set_major_formatter(LogFormatter(labelOnlyBase=True))  # plain "100", no mathtext parsing
+            lo, hi = np.percentile(finite, 0.5), finite.max()
+            ax.set_ylim(lo * 0.8, hi * 1.6)
+        ax.set_xlim(g.min(), g.max())
+        ymin, ymax = ax.get_ylim()
+        for n, (phase, rings_of_phase, dilation) in enumerate(references):
+            colour = PHASE_COLOURS[n % len(PHASE_COLOURS)]
+            gr = rings_of_phase.g_per_nm / dilation
+            keep = (gr >= g.min()) & (gr <= g.max()) & (~rings_of_phase.double_diffraction)
+            top = set(np.argsort(-rings_of_phase.intensity[keep])[:12].tolist())
+            frac = 0.05 + 0.25 * rings_of_phase.intensity[keep] / 100.0
+            # one collection for all ticks of a phase: x in data, y in axes units
+            ax.vlines(gr[keep], 0.0, frac, transform=ax.get_xaxis_transform(), colors=colour, lw=1.0, alpha=0.8)
+            for j, (gj, fj, hkl) in enumerate(zip(gr[keep], frac, np.array(rings_of_phase.hkl)[keep])):
+                if j in top:
+                    ax.text(gj, ymin * (ymax / ymin) ** (fj + 0.01), hkl.replace(" ", ""), rotation=90, fontsize=6,
+                            color=colour, ha="center", va="bottom")
+            ax.plot([], [], color=colour, lw=1.5, label=phase)
+        ax.legend(fontsize=7, loc="upper right", frameon=False)
+    ax.set_xlabel("g = 1/d (1/nm)", fontsize=8)
+    ax.set_ylabel("azimuthal mean (counts/px)", fontsize=8)
+    ax.tick_params(labelsize=7)
+    _save_small_png(fig, path)
+    plt.close(fig)
+
+
+def _save_small_png(fig, path) -> None:
+    """Save as a palette PNG (≤ 128 colours): a noisy thumbnail then costs tens, not hundreds, of kB."""
+    from PIL import Image
+
+    from ringid.core.atomic import atomic_path
+
+    # the Agg canvas's pixels straight to PIL (no PNG encoded and decoded on the way)
+    fig.set_dpi(100)
+    fig.canvas.draw()
+    rgba = np.asarray(fig.canvas.buffer_rgba())
+    img = Image.fromarray(rgba[..., :3]).quantize(colors=128, method=Image.Quantize.FASTOCTREE)
+    with atomic_path(path, suffix=".png") as tmp:
+        img.save(tmp, format="PNG", optimize=True)
+
+
+def calibration_png(path: str | os.PathLike, *, title: str, residuals: list[dict]) -> None:
+    """Residual plot of a calibration: (g_obs − g_calc)/g_calc in % against g, labelled by hkl."""
+
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(6.0, 2.6), dpi=100)
+    g = np.array([r["g_calc_per_nm"] for r in residuals], float)
+    rel = np.array([100.0 * (r["g_obs_per_nm"] - r["g_calc_per_nm"]) / r["g_calc_per_nm"] for r in residuals], float)
+    ax.axhline(0, color="#888", lw=0.8)
+    ax.plot(g, rel, "o", color="#2471a3", ms=4)
+    for gi, ri, r in zip(g, rel, residuals):
+        ax.annotate(str(r.get("hkl", "")).replace(" ", ""), (gi, ri), fontsize=6, xytext=(2, 3), textcoords="offset points")
+    ax.set_xlabel("g (1/nm)", fontsize=8)
+    ax.set_ylabel("Δg/g (%)", fontsize=8)
+    ax.set_title(title, fontsize=9)
+    ax.tick_params(labelsize=7)
+    fig.tight_layout()
+    _save_small_png(fig, path)
+    plt.close(fig)

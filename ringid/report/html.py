@@ -1,0 +1,180 @@
+"""report.html: one self-contained page (standard library only) from a results folder."""
+
+from __future__ import annotations
+
+import base64
+import csv
+import html
+import os
+from pathlib import Path
+
+from ringid import __version__
+from ringid.core.atomic import write_text
+from ringid.report.summary import SCREENING_NOTE, _load_json, _num, write_summary
+
+_CSS = """
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:0 auto;max-width:1200px;padding:0 16px 40px;color:#1d232a}
+h1{font-size:1.6em;margin:.8em 0 .2em} h2{border-bottom:2px solid #d6dde5;padding-bottom:4px;margin-top:1.6em}
+h3{margin:1.2em 0 .3em} .note{background:#fff6dc;border-left:5px solid #e0a800;padding:8px 12px;margin:12px 0}
+table{border-collapse:collapse;font-size:.86em;margin:6px 0} th,td{border:1px solid #d6dde5;padding:3px 7px;text-align:left;vertical-align:top}
+th{background:#eef2f6;cursor:pointer;user-select:none} tr:nth-child(even) td{background:#f8fafc}
+td.num{text-align:right;font-variant-numeric:tabular-nums} .failed td{background:#fde8e8 !important}
+.sample{border:1px solid #d6dde5;border-radius:6px;padding:8px 14px;margin:14px 0}
+.meta{color:#52606d;font-size:.9em} .tag{display:inline-block;background:#e6eef7;border-radius:3px;padding:0 5px;margin:1px 2px;font-size:.85em}
+.err{color:#a61b1b} img{max-width:100%;height:auto} input{padding:4px 8px;margin:6px 0;width:320px}
+"""
+
+_JS = """
+function sortTable(th){const t=th.closest('table'),i=[...th.parentNode.children].indexOf(th),
+rows=[...t.tBodies[0].rows],asc=th.dataset.asc!=='1';th.dataset.asc=asc?'1':'0';
+rows.sort((a,b)=>{const x=a.cells[i].innerText,y=b.cells[i].innerText,nx=parseFloat(x),ny=parseFloat(y);
+const c=(!isNaN(nx)&&!isNaN(ny))?nx-ny:x.localeCompare(y);return asc?c:-c});rows.forEach(r=>t.tBodies[0].appendChild(r));}
+function filterTable(inp){const q=inp.value.toLowerCase();for(const r of document.getElementById('summary').tBodies[0].rows){
+r.style.display=r.innerText.toLowerCase().includes(q)?'':'none';}}
+"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def _img(path: Path, alt: str) -> str:
+    try:
+        data = path.read_bytes()
+    except OSError:
+        return f'<p class="meta">(no figure: {_e(path.name)})</p>'
+    return f'<img alt="{_e(alt)}" src="data:image/png;base64,{base64.b64encode(data).decode()}">'
+
+
+def _table(header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None) -> str:
+    id_attr = f' id="{_e(table_id)}"' if table_id else ""
+    out = [f"<table{id_attr}><thead><tr>"]
+    out += [f'<th onclick="sortTable(this)">{_e(h)}</th>' for h in header]
+    out.append("</tr></thead><tbody>")
+    for k, row in enumerate(rows):
+        cls = row_class(k) if row_class else ""
+        out.append(f'<tr class="{_e(cls)}">' if cls else "<tr>")
+        out += [f'<td class="num">{_e(v)}</td>' if i in numeric else f"<td>{_e(v)}</td>" for i, v in enumerate(row)]
+        out.append("</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _read_csv(path: Path) -> list[dict]:
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            return list(csv.DictReader(fh))
+    except OSError:
+        return []
+
+
+def _sample_section(row: dict, sample_dir: Path) -> str:
+    rec = _load_json(sample_dir / "sample.json")
+    ident = _load_json(sample_dir / "identification.json")
+    parts = [f'<div class="sample" id="s-{_e(row["sample"])}"><h3>{_e(row["sample"])}</h3>']
+    meta = [f"status: <b>{_e(row['status'])}</b>", f"crystallinity: <b>{_e(row['crystallinity'] or '—')}</b>"]
+    if row["phases"]:
+        conf = row["confidence"].split(";")
+        meta.append("phases: " + ", ".join(f"<b>{_e(p)}</b> ({_e(c)})" for p, c in zip(row["phases"].split(";"), conf)))
+    else:
+        meta.append("phases: none identified")
+    if row["alternatives"]:
+        meta.append(f"cannot be told apart from: {_e(row['alternatives'].replace(';', ', '))}")
+    if row["crystallite_size_nm"]:
+        meta.append(f"crystallite size: {_e(row['crystallite_size_nm'])} nm")
+    if row["ring_character"]:
+        meta.append(f"ring character: {_e(row['ring_character'])}")
+    if row["fractions_rough"]:
+        meta.append(f"rough fractions: {_e(row['fractions_rough'])}")
+    parts.append('<p class="meta">' + " · ".join(meta) + "</p>")
+    if row["note"]:
+        parts.append(f'<p class="meta">note: {_e(row["note"])}</p>')
+    if row["error"]:
+        parts.append(f'<p class="err">error: {_e(row["error"])}</p>')
+    if row["flags"]:
+        parts.append("<p>" + "".join(f'<span class="tag">{_e(f)}</span>' for f in row["flags"].split(";")) + "</p>")
+    if (sample_dir / "overview.png").exists():
+        parts.append(_img(sample_dir / "overview.png", f"overview of {row['sample']}"))
+    rings = _read_csv(sample_dir / "rings.csv")
+    if rings:
+        cols = [c for c in ("kind", "g_per_nm", "d_angstrom", "d_sigma_angstrom", "fwhm_per_nm", "area", "size_nm",
+                            "character", "phase", "hkl", "double_diffraction") if c in rings[0]]
+        fmt = {"g_per_nm": ".4f", "d_angstrom": ".4f", "d_sigma_angstrom": ".4f", "fwhm_per_nm": ".3f", "area": ".4g", "size_nm": ".3g"}
+        body = [[_num(r[c], fmt[c]) if c in fmt and r[c] not in ("", None) else r[c] for c in cols] for r in rings]
+        parts.append(_table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}))
+    parts += _identification_notes(ident)
+    geo = rec.get("geometry") or {}
+    if geo:
+        parts.append('<p class="meta">geometry: ' + ", ".join(f"{_e(k)} = {_e(_num(v, '.6g'))}" for k, v in geo.items()) + "</p>")
+    parts.append("</div>")
+    return "".join(parts)
+
+
+def _identification_notes(ident: dict) -> list[str]:
+    """The report's plain sentences about what the library could not explain or would not accept."""
+    out = []
+    if ident.get("unexplained"):
+        share = ident.get("unexplained_intensity_share")
+        share_text = f" ({float(share):.0%} of the ring intensity)" if isinstance(share, (int, float)) else ""
+        out.append('<p class="meta"><b>rings not explained by the library</b>' + _e(share_text) + ": d = "
+                   + ", ".join(_num(u["d_angstrom"], ".4f") for u in ident["unexplained"]) + " Å</p>")
+    for m in ident.get("lattice_mismatch", []):
+        dil, sig = m.get("dilation"), m.get("dilation_sigma")
+        if isinstance(dil, (int, float)):
+            sig_text = f" ± {float(sig) * 100:.2f}" if isinstance(sig, (int, float)) else ""
+            out.append(f'<p class="meta">{_e(m.get("phase", ""))} fits only with its lattice scaled by '
+                       f"{(float(dil) - 1) * 100:+.2f}{_e(sig_text)} %, outside the calibration's window: "
+                       "a different phase of the same structure type, or a calibration that is off.</p>")
+    for m in ident.get("not_significant", []):
+        p = m.get("false_identification_probability")
+        if isinstance(p, (int, float)):
+            out.append(f'<p class="meta">{_e(m.get("phase", ""))} was not reported: a phase absent from the sample '
+                       f"would score as well with probability {float(p):.2g}.</p>")
+    return out
+
+
+def write_report(results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report") -> Path:
+    """Write ``summary.csv`` and ``report.html`` under ``results_dir``; return the report path."""
+    results = Path(results_dir)
+    rows = write_summary(results, samples)
+    n_ok = sum(r["status"] == "ok" for r in rows)
+    counts: dict[str, int] = {}
+    for r in rows:
+        counts[r["crystallinity"] or "—"] = counts.get(r["crystallinity"] or "—", 0) + 1
+    parts = ["<!DOCTYPE html><html lang=en><head><meta charset=utf-8>",
+             f"<title>{_e(title)}</title><style>{_CSS}</style><script>{_JS}</script></head><body>",
+             f"<h1>{_e(title)}</h1>",
+             f'<p class="meta">{len(rows)} samples: {n_ok} ok, {len(rows) - n_ok} failed · '
+             + ", ".join(f"{_e(k)}: {v}" for k, v in sorted(counts.items())) + f" · ringid {__version__}</p>",
+             f'<div class="note"><b>Screening result.</b> {_e(SCREENING_NOTE)}</div>',
+             "<h2>Summary</h2>", '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
+    cols = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "crystallite_size_nm",
+            "n_rings", "unexplained_rings", "ellipticity", "flags", "error"]
+    parts.append(_table(cols, [[r[c] for c in cols] for r in rows], table_id="summary", numeric={6, 7, 8, 9},
+                        row_class=lambda k: "failed" if rows[k]["status"] != "ok" else ""))
+    parts.append("<h2>Calibrations</h2>")
+    cal_rows = []
+    for cal in calibrations:
+        rec = _load_json(results / "calibrations" / f"{cal}.json")
+        cal_rows.append([cal, rec.get("status", "failed" if not rec else "ok"), rec.get("kind", ""), rec.get("standard", ""),
+                         _num(rec.get("camera_constant_A_px"), ".6g"), _num(rec.get("camera_constant_sigma_A_px"), ".2g"),
+                         _num(rec.get("ellipticity"), ".5f"), _num(rec.get("ellipse_angle_deg"), ".2f"),
+                         _num(rec.get("voltage_kv"), "g"), rec.get("error", "")])
+    parts.append(_table(["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)", "kV", "error"],
+                        cal_rows, numeric={4, 5, 6, 7, 8}))
+    for cal in calibrations:
+        fig = results / "calibrations" / f"{cal}.png"
+        if fig.exists():
+            parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration residuals of {cal}"))
+    parts.append("<h2>Samples</h2>")
+    for r in rows:
+        parts.append(_sample_section(r, results / "samples" / r["sample"]))
+    parts.append("<h2>Phase library</h2>")
+    index = _read_csv(results / "library" / "index.csv")
+    if index:
+        cols = ["phase", "formula", "space_group", "a", "b", "c", "alpha", "beta", "gamma", "n_rings", "status", "error", "title"]
+        parts.append(_table(cols, [[r.get(c, "") for c in cols] for r in index], numeric={3, 4, 5, 6, 7, 8, 9}))
+    parts.append("</body></html>\n")
+    path = results / "report.html"
+    write_text(path, "".join(parts))
+    return path

@@ -1,0 +1,105 @@
+"""Summary table and the self-contained HTML report of a run.
+
+What this stage does: read every sample's ``sample.json`` and ``identification.json`` (and
+``rings.csv``, ``overview.png``), the calibration records and the library index, and write
+``summary.csv`` (one row per sample, DESIGN.md contract) and ``report.html`` (one file,
+figures inlined, sortable and filterable summary table). Every text that comes from input
+files (sample ids, notes, CIF titles, errors) is HTML-escaped. What it does not do: compute
+anything about the patterns.
+
+Imports only the standard library; the figures are made by ``ringid.report.figures`` in the jobs
+that own the data.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from pathlib import Path
+
+from ringid.core.atomic import write_csv
+
+SUMMARY_COLUMNS = [
+    "sample", "status", "crystallinity", "phases", "alternatives", "confidence", "center_x_px", "center_y_px",
+    "ellipticity", "crystallite_size_nm", "n_rings", "unexplained_rings", "flags", "error",
+    "calibration", "fractions_rough", "crystallite_size_sigma_nm", "ring_character", "note",
+    "unexplained_d_angstrom", "unexplained_intensity_share", "false_identification_probability",
+]
+
+SCREENING_NOTE = ("Phase identification is a screening result: ring positions fix a lattice only as well as the "
+                  "calibration allows, isostructural phases can be a fraction of a percent apart, and intensities "
+                  "are distorted by dynamical scattering and texture. Confirm critical assignments by independent "
+                  "means (e.g. imaging, EDS/EELS, an internal standard, X-ray diffraction).")
+
+
+def _load_json(path: Path) -> dict:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+
+
+def _num(x, fmt: str) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return ""
+    try:
+        return format(float(x), fmt)
+    except (TypeError, ValueError):
+        return str(x)
+
+
+def summary_row(sample: str, sample_dir: Path) -> dict:
+    """One summary row from a sample's output folder (missing files make a failed row)."""
+    rec = _load_json(sample_dir / "sample.json")
+    ident = _load_json(sample_dir / "identification.json")
+    if not rec:
+        rec = {"status": "failed", "error": "no sample record (the image job did not finish)"}
+    status = rec.get("status", "failed")
+    error = rec.get("error", "")
+    if status == "ok" and not ident:
+        status, error = "failed", "no identification record"
+    if ident.get("status") == "failed":
+        status, error = "failed", ident.get("error", "identification failed")
+    geo = rec.get("geometry") or {}
+    phases = ident.get("phases", [])
+    alts = []
+    for group in ident.get("alternatives", []):
+        alts += [a for a in group if a not in alts and a not in phases]
+    flags = list(rec.get("flags", [])) + [f for f in ident.get("flags", []) if f not in rec.get("flags", [])]
+    size = rec.get("crystallite_size_nm")
+    size_text = _num(size, ".3g")
+    if rec.get("crystallite_size_lower_limit_nm") and not size_text:
+        size_text = f">{_num(rec['crystallite_size_lower_limit_nm'], '.3g')}"
+    return {
+        "sample": sample,
+        "status": status,
+        "crystallinity": rec.get("crystallinity", "no_signal" if status == "failed" else ""),
+        "phases": ";".join(phases),
+        "alternatives": ";".join(alts),
+        "confidence": ";".join(_num(c, ".3f") for c in ident.get("confidence", [])),
+        "center_x_px": _num(geo.get("center_x_px"), ".3f"),
+        "center_y_px": _num(geo.get("center_y_px"), ".3f"),
+        "ellipticity": _num(geo.get("ellipticity"), ".5f"),
+        "crystallite_size_nm": size_text,
+        "n_rings": str(rec.get("n_rings", 0)),
+        "unexplained_rings": str(ident.get("unexplained_rings", 0 if status == "failed" else "")),
+        "flags": ";".join(flags),
+        "error": " ".join(str(error).split()),
+        "calibration": rec.get("calibration", ""),
+        "fractions_rough": ";".join(_num(f, ".2f") for f in ident.get("fractions_rough", [])),
+        "crystallite_size_sigma_nm": _num(rec.get("crystallite_size_sigma_nm"), ".2g"),
+        "ring_character": rec.get("ring_character", ""),
+        "note": rec.get("note", ""),
+        # rings that no reported phase explains: their d (Å) and share of the sharp rings' area
+        "unexplained_d_angstrom": ";".join(_num(u.get("d_angstrom"), ".4f") for u in ident.get("unexplained", [])),
+        "unexplained_intensity_share": _num(ident.get("unexplained_intensity_share"), ".3f"),
+        "false_identification_probability": ";".join(_num(p, ".2g") for p in ident.get("false_identification_probability", [])),
+    }
+
+
+def write_summary(results_dir: str | os.PathLike, samples: list[str]) -> list[dict]:
+    results = Path(results_dir)
+    rows = [summary_row(s, results / "samples" / s) for s in samples]
+    write_csv(results / "summary.csv", SUMMARY_COLUMNS, ([r[c] for c in SUMMARY_COLUMNS] for r in rows))
+    return rows

@@ -1,0 +1,1 @@
+"""What the rings say about the sample: crystallite size, crystallinity, ring character."""
