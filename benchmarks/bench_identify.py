@@ -65,7 +65,10 @@ def main() -> None:
             t0 = time.perf_counter()
             res = identify(obs, index)
             times.append(time.perf_counter() - t0)
-        print(f"{name:<16} {len(obs):3d} rings  {min(times) * 1000:7.1f} ms (best of {args.repeat})  -> {';'.join(res.phases)}")
+        print(
+            f"{name:<16} {len(obs):3d} rings  {min(times) * 1000:7.1f} ms (best of {args.repeat})"
+            f"  -> {';'.join(res.phases)}"
+        )
 
 
 if __name__ == "__main__":

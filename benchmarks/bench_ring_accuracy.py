@@ -65,7 +65,9 @@ def dense_size_bias() -> None:
         for seed in range(3):
             rng = np.random.default_rng(seed)
             pixels = np.pi * 100.0 * g
-            counts = rng.poisson((tail + sum(pseudo_voigt(g, g0, fwhm, 0.5, a) for g0, a in zip(g_rings, areas))) * pixels)
+            counts = rng.poisson(
+                (tail + sum(pseudo_voigt(g, g0, fwhm, 0.5, a) for g0, a in zip(g_rings, areas))) * pixels
+            )
             prof = Profile(g, counts / pixels, np.sqrt(np.maximum(counts, 1)) / pixels)
             est.append(analyze_profile(prof, instrument=inst).size.size_nm / truth)
             known.append(sample_size(fit_rings(prof, tail, instrument=inst).rings, inst)[0].size_nm / truth)
@@ -90,9 +92,12 @@ def scherrer_bias(seeds: int = 10) -> None:
                 pull.append((size.size_nm - diameter) / size.size_sigma_nm)
                 fit = fit_rings(profile, _size_background(profile.g_per_nm), instrument=inst)
                 known.append(sample_size(fit.rings, inst)[0].size_nm / diameter - 1.0)
-            print(f"Scherrer, {name} {diameter:.0f} nm: D {100 * np.mean(ratio):+.1f} % (sd {100 * np.std(ratio):.1f} %), "
-                  f"pull mean {np.mean(pull):+.1f}, sd {np.std(pull):.1f}; with the true background "
-                  f"{100 * np.mean(known):+.1f} % ({seeds} seeds)")
+            print(
+                f"Scherrer, {name} {diameter:.0f} nm: D {100 * np.mean(ratio):+.1f} % "
+                f"(sd {100 * np.std(ratio):.1f} %), "
+                f"pull mean {np.mean(pull):+.1f}, sd {np.std(pull):.1f}; with the true background "
+                f"{100 * np.mean(known):+.1f} % ({seeds} seeds)"
+            )
 
 
 def _broad_misfits(a, profile) -> list[str]:

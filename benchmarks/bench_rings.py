@@ -40,7 +40,8 @@ def cases():
     nano = sum(2 * a * pseudo_voigt(G, g0, 0.25, 0.5) for g0, a in AU)
     rng = np.random.default_rng(0)
     thirty = sum(
-        rng.uniform(0.3, 2.0) * pseudo_voigt(G, g0, 0.03 + 0.002 * g0, 0.5) for g0 in np.sort(rng.uniform(2.5, 13.0, 30))
+        rng.uniform(0.3, 2.0) * pseudo_voigt(G, g0, 0.03 + 0.002 * g0, 0.5)
+        for g0 in np.sort(rng.uniform(2.5, 13.0, 30))
     )
     return {
         "crystalline (5 Au rings)": TAIL + rings,

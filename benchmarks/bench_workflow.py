@@ -159,8 +159,14 @@ def main() -> None:
     image_work = statistics.median(stage_times.get("total", [np.nan]))
     rec("in-process image work / t_int (target <= 2)", image_work / t_int, "ratio")
 
-    rec("image job imports (interpreter + ringid.jobs.measure, integrate, rings)",
-        import_cost("ringid.cli, ringid.jobs.measure, ringid.image.integrate, ringid.profile.rings, pyFAI.ext.histogram, scipy.optimize"), "s")
+    rec(
+        "image job imports (interpreter + ringid.jobs.measure, integrate, rings)",
+        import_cost(
+            "ringid.cli, ringid.jobs.measure, ringid.image.integrate, ringid.profile.rings, "
+            "pyFAI.ext.histogram, scipy.optimize"
+        ),
+        "s",
+    )
     rec("identify job imports (interpreter + identify, figures, pyplot)",
         import_cost("ringid.cli, ringid.identify, ringid.report.figures, matplotlib.pyplot"), "s")
 
@@ -178,7 +184,10 @@ def main() -> None:
             walls[n] = time.perf_counter() - t0
             rec(f"workflow wall time, N = {n}, --cores {args.cores}, batch_size {bs}", walls[n], "s")
             rss = []
-            for tsv in [*(results / "benchmarks" / "samples").glob("*.tsv"), *(results / "benchmarks" / "batches").glob("*.tsv")]:
+            for tsv in [
+                *(results / "benchmarks" / "samples").glob("*.tsv"),
+                *(results / "benchmarks" / "batches").glob("*.tsv"),
+            ]:
                 with open(tsv) as fh:
                     row = list(csv.DictReader(fh, delimiter="\t"))[0]
                 rss.append(float(row["max_rss"]))

@@ -25,8 +25,14 @@ _atom_site_U_iso_or_equiv
 """
 
 
-def cif_text(name="X", formula="Au", cell=(4.0782, 4.0782, 4.0782, 90, 90, 90), symmetry="_space_group_name_H-M_alt 'F m -3 m'\n",
-             atoms=(("Au1", "Au", 0, 0, 0, 1, 0.0076),), extra="") -> str:
+def cif_text(
+    name="X",
+    formula="Au",
+    cell=(4.0782, 4.0782, 4.0782, 90, 90, 90),
+    symmetry="_space_group_name_H-M_alt 'F m -3 m'\n",
+    atoms=(("Au1", "Au", 0, 0, 0, 1, 0.0076),),
+    extra="",
+) -> str:
     a, b, c, al, be, ga = cell
     text = HEADER.format(name=name, formula=formula, a=a, b=b, c=c, alpha=al, beta=be, gamma=ga)
     text += symmetry + extra + ATOM_LOOP

@@ -75,7 +75,10 @@ def test_first_halo_position_follows_contact_distance():
 def test_halo_width_is_amorphous_like():
     """First halo FWHM of S(g) of order 1 nm⁻¹ in g (METHODS.md §7: Δ(1/d) ≈ 0.5–1 nm⁻¹ [M])."""
     g = np.linspace(2.0, 8.0, 601)
-    s_of_g = amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200) / amorphous.electron_scattering_factor_angstrom("Si", g) ** 2
+    s_of_g = (
+        amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200)
+        / amorphous.electron_scattering_factor_angstrom("Si", g) ** 2
+    )
     i = int(np.argmax(s_of_g))
     half = 1.0 + 0.5 * (s_of_g[i] - 1.0)
     above = np.nonzero(s_of_g > half)[0]

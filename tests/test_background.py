@@ -83,7 +83,9 @@ def test_far_tails_of_broad_rings_are_not_background():
     sigma = np.sqrt(y / PIXELS)
     beyond_window = 1.0 - 2.0 / np.pi * np.arctan(2.0 / 0.14)
     kept = np.sum(estimate_background(G, y, sigma) - TAIL) / np.sum(rings) - beyond_window
-    kept_plain = np.sum(estimate_background(G, y, sigma, trend_half_width_ln_g=None) - TAIL) / np.sum(rings) - beyond_window
+    kept_plain = (
+        np.sum(estimate_background(G, y, sigma, trend_half_width_ln_g=None) - TAIL) / np.sum(rings) - beyond_window
+    )
     # of the rings' area beyond that floor, plain SNIP keeps 0.23 and about the trend 0.08
     # (measured): the trend removes most of the bump
     assert kept_plain > 0.15

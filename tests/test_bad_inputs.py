@@ -64,7 +64,9 @@ def calibration(tmp_path_factory) -> Path:
 
 
 def run_measure(image: Path, calibration: Path, out: Path, capsys, *extra: str) -> tuple[int, dict, str]:
-    rc = main(["measure", str(image), "--calibration", str(calibration), "-o", str(out), "--sample", image.stem, *extra])
+    rc = main(
+        ["measure", str(image), "--calibration", str(calibration), "-o", str(out), "--sample", image.stem, *extra]
+    )
     err = capsys.readouterr().err
     return rc, json.loads((out / "sample.json").read_text(encoding="utf-8")), err
 
@@ -116,19 +118,63 @@ FAILING_IMAGES = [
     ("zero-byte file", "empty.tif", _zero_byte, "empty file (0 bytes)", ()),
     ("truncated TIFF", "truncated.tif", _truncated, "unreadable or truncated TIFF", ()),
     ("text file named .tif", "notes.tif", _text, "not an image: neither a TIFF nor a .npy file", ()),
-    ("1×1 image", "one.tif", lambda p: _tiff(p, np.ones((1, 1), np.uint16)), "image of 1×1 px is smaller than 64×64", ()),
-    ("10×3000 image", "strip.tif", lambda p: _tiff(p, np.ones((10, 3000), np.uint16)),
-     "image of 3000×10 px is smaller than 64×64", ()),
+    (
+        "1×1 image",
+        "one.tif",
+        lambda p: _tiff(p, np.ones((1, 1), np.uint16)),
+        "image of 1×1 px is smaller than 64×64",
+        (),
+    ),
+    (
+        "10×3000 image",
+        "strip.tif",
+        lambda p: _tiff(p, np.ones((10, 3000), np.uint16)),
+        "image of 3000×10 px is smaller than 64×64",
+        (),
+    ),
     ("true-colour RGB", "colour.tif", _rgb, "true-colour RGB image", ()),
-    ("all-zero", "zeros.tif", lambda p: _tiff(p, np.zeros((256, 256), np.uint16)), "every pixel is 0: no counts recorded", ()),
-    ("all-saturated", "saturated.tif", lambda p: _tiff(p, np.full((256, 256), 65535, np.uint16)),
-     "every pixel is saturated (at or above 65535 counts)", ()),
-    ("all-NaN float", "nan.tif", lambda p: _tiff(p, np.full((256, 256), np.nan, np.float32)),
-     "every pixel is NaN or infinite", ()),
-    ("over --max-pixels", "large.tif", lambda p: _tiff(p, ring_pattern()),
-     "image of 65536 pixels exceeds the limit of 50000 pixels", ("--max-pixels", "50000")),
-    ("3-D volume (.npy)", "volume.npy", _volume_npy, "3-D data of shape (256, 256, 20) is not a single image or a frame stack", ()),
-    ("4-D TIFF", "volume4d.tif", _volume_4d, "4-D data of shape (2, 3, 256, 256) is not a single image or a frame stack", ()),
+    (
+        "all-zero",
+        "zeros.tif",
+        lambda p: _tiff(p, np.zeros((256, 256), np.uint16)),
+        "every pixel is 0: no counts recorded",
+        (),
+    ),
+    (
+        "all-saturated",
+        "saturated.tif",
+        lambda p: _tiff(p, np.full((256, 256), 65535, np.uint16)),
+        "every pixel is saturated (at or above 65535 counts)",
+        (),
+    ),
+    (
+        "all-NaN float",
+        "nan.tif",
+        lambda p: _tiff(p, np.full((256, 256), np.nan, np.float32)),
+        "every pixel is NaN or infinite",
+        (),
+    ),
+    (
+        "over --max-pixels",
+        "large.tif",
+        lambda p: _tiff(p, ring_pattern()),
+        "image of 65536 pixels exceeds the limit of 50000 pixels",
+        ("--max-pixels", "50000"),
+    ),
+    (
+        "3-D volume (.npy)",
+        "volume.npy",
+        _volume_npy,
+        "3-D data of shape (256, 256, 20) is not a single image or a frame stack",
+        (),
+    ),
+    (
+        "4-D TIFF",
+        "volume4d.tif",
+        _volume_4d,
+        "4-D data of shape (2, 3, 256, 256) is not a single image or a frame stack",
+        (),
+    ),
 ]
 
 
@@ -163,7 +209,9 @@ def test_blank_pattern_is_no_signal_not_an_error(tmp_path, calibration, capsys):
     """Counts but no ring (an exposure through a hole): a result, centre from point symmetry."""
     from ringid.synthetic.simulate import simulate_pattern
 
-    image = _tiff(tmp_path / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=2).image)
+    image = _tiff(
+        tmp_path / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=2).image
+    )
     rc, rec, _ = run_measure(image, calibration, tmp_path / "out", capsys)
     assert rc == 0 and rec["status"] == "ok" and rec["error"] == ""
     assert rec["crystallinity"] == "no_signal" and rec["n_rings"] == 0
@@ -215,12 +263,16 @@ def test_ring_pattern_control_is_measured(tmp_path, calibration, capsys):
     rc, rec, _ = run_measure(image, calibration, tmp_path / "out", capsys)
     assert rc == 0 and rec["status"] == "ok" and rec["crystallinity"] == "crystalline" and rec["n_rings"] >= 3
     g = rec["geometry"]
-    assert abs(g["center_x_px"] - 127.5) < 0.5 and abs(g["center_y_px"] - 127.5) < 0.5  # simulator default: image centre
+    assert (
+        abs(g["center_x_px"] - 127.5) < 0.5 and abs(g["center_y_px"] - 127.5) < 0.5
+    )  # simulator default: image centre
 
 
 # --------------------------------------------------------------------------- CIFs
 
-ATOM_HEADER = "loop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n_atom_site_fract_y\n_atom_site_fract_z\n"
+ATOM_HEADER = (
+    "loop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n_atom_site_fract_y\n_atom_site_fract_z\n"
+)
 SCRIPT_TITLE = """<script>alert("x")</script> O'Neil & "co" <b>bold</b>"""
 
 
@@ -233,7 +285,11 @@ def _bad_cifs(folder: Path) -> dict[str, str]:
     write_cif(folder, "unknown_element", cif_text(atoms=(("Xx1", "Xx", 0, 0, 0, 1, 0.0076),)))
     write_cif(folder, "occupancy_over_1", cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1.5, 0.0076),)))
     write_cif(folder, "negative_u", cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, -0.01),)))
-    write_cif(folder, "duplicated_site", cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.0076), ("Au2", "Au", 0, 0, 0, 1, 0.0076))))
+    write_cif(
+        folder,
+        "duplicated_site",
+        cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.0076), ("Au2", "Au", 0, 0, 0, 1, 0.0076))),
+    )
     write_cif(folder, "duplicated_label",
               cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.0076), ("Au1", "Au", 0.5, 0.5, 0.5, 1, 0.0076))))
     write_cif(folder, "unknown_space_group", cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"))
@@ -294,16 +350,29 @@ def test_untrusted_text_is_escaped_in_the_report(tmp_path, calibration, capsys):
     bad_name = _text(bad_name.with_name(bad_name.name + ".tif"))  # error text carries the file name
     from ringid.synthetic.simulate import simulate_pattern
 
-    blank = _tiff(images / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=3).image)
+    blank = _tiff(
+        images / "blank.tif", simulate_pattern([], [], camera_constant_A_px=K_A_PX, shape=(256, 256), seed=3).image
+    )
     note = """<script>alert("note")</script> 'single' "double" & <i>"""
-    (tmp_path / "cal.csv").write_text(f"calibration,camera_constant_A_px,voltage_kv\nknown,{K_A_PX},200\n", encoding="utf-8")
+    (tmp_path / "cal.csv").write_text(
+        f"calibration,camera_constant_A_px,voltage_kv\nknown,{K_A_PX},200\n", encoding="utf-8"
+    )
     with open(tmp_path / "samples.csv", "w", newline="", encoding="utf-8") as fh:
         import csv
 
         w = csv.writer(fh)
         w.writerows([["sample", "image", "calibration", "note"], ["s_blank", "images/blank.tif", "known", note],
                      ["s_badname", f"images/{bad_name.name}", "known", ""]])
-    main(["calibration", "known", "--sheet", str(tmp_path / "cal.csv"), "-o", str(results / "calibrations" / "known.json")])
+    main(
+        [
+            "calibration",
+            "known",
+            "--sheet",
+            str(tmp_path / "cal.csv"),
+            "-o",
+            str(results / "calibrations" / "known.json"),
+        ]
+    )
     for sample, image in (("s_blank", blank), ("s_badname", bad_name)):
         out = results / "samples" / sample
         main(["measure", str(image), "--calibration", str(results / "calibrations" / "known.json"), "-o", str(out),
@@ -452,7 +521,9 @@ def test_workflow_start_lists_every_sheet_problem_and_runs_no_job(sheet_folder):
 def test_bad_config_is_refused_naming_the_key(sheet_folder, config, override, line):
     _write(sheet_folder / "cal.csv", "calibration,image,standard,voltage_kv\nfilm,cal.tif,Au,200")
     _write(sheet_folder / "samples.csv", "sample,image,calibration\ns1,a.tif,film")
-    res = _snakemake_dry_run(sheet_folder, {**_workflow_config(sheet_folder), **config}, *([override] if override else []))
+    res = _snakemake_dry_run(
+        sheet_folder, {**_workflow_config(sheet_folder), **config}, *([override] if override else [])
+    )
     assert res.returncode != 0
     assert f"ringid: error: {line}" in (res.stdout + res.stderr).splitlines(), res.stdout + res.stderr
     assert not (sheet_folder / "results").exists()

@@ -112,9 +112,27 @@ def test_manifest_from_stdin_reads_as_from_a_file(inputs, tmp_path):
 
 def _one_sample_run(inputs, sample: str, out: Path) -> None:
     """The workflow's one-sample commands (rules measure and identify) for ``sample``."""
-    assert main(["measure", str(inputs["images"][sample]), "--calibration", str(inputs["calibrations"] / "known.json"),
-                 "-o", str(out), "--sample", sample, "--calibration-id", "known", "--note", f"note of {sample}, with a comma",
-                 "--voltage-kv", "200"]) == 0
+    assert (
+        main(
+            [
+                "measure",
+                str(inputs["images"][sample]),
+                "--calibration",
+                str(inputs["calibrations"] / "known.json"),
+                "-o",
+                str(out),
+                "--sample",
+                sample,
+                "--calibration-id",
+                "known",
+                "--note",
+                f"note of {sample}, with a comma",
+                "--voltage-kv",
+                "200",
+            ]
+        )
+        == 0
+    )
     assert main(["identify", "--sample-dir", str(out), "--library", str(inputs["lib"])]) == 0
 
 
@@ -241,7 +259,10 @@ def test_workflow_batch_size_3_gives_the_batch_size_1_results(workflow):
     for s in samples:
         assert _assert_same_folder(one / "samples" / s, three / "samples" / s) == 8
     # 6 samples in batches of 3 (sorted ids): two image jobs, two identification jobs
-    assert sorted(p.name for p in (three / "benchmarks" / "batches").iterdir()) == ["measure_b001.tsv", "measure_b002.tsv"]
+    assert sorted(p.name for p in (three / "benchmarks" / "batches").iterdir()) == [
+        "measure_b001.tsv",
+        "measure_b002.tsv",
+    ]
     assert sorted(p.name for p in (three / "logs" / "batches").iterdir()) == [
         "identify_b001.log", "identify_b002.log", "measure_b001.log", "measure_b002.log"]
 

@@ -74,7 +74,9 @@ def test_origin_choice_of_diamond_is_found(tmp_path):
 
 
 def test_displacement_parameters(tmp_path):
-    b_text = cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1),)).replace("_atom_site_U_iso_or_equiv", "_atom_site_B_iso_or_equiv")
+    b_text = cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1),)).replace(
+        "_atom_site_U_iso_or_equiv", "_atom_site_B_iso_or_equiv"
+    )
     b_text = b_text.replace("Au1 Au 0 0 0 1\n", "Au1 Au 0 0 0 1 0.6\n")
     c = read_crystal(write_cif(tmp_path, "B", b_text))
     assert c.u_iso_angstrom2[0] == pytest.approx(0.6 / (8 * math.pi**2), rel=1e-6)
@@ -82,7 +84,10 @@ def test_displacement_parameters(tmp_path):
     c = read_crystal(write_cif(tmp_path, "none", no_u))
     assert c.u_iso_angstrom2[0] == DEFAULT_U_ISO_ANGSTROM2
     assert any("default U" in w for w in c.warnings)
-    aniso = cif_text() + "loop_\n_atom_site_aniso_label\n_atom_site_aniso_U_11\n_atom_site_aniso_U_22\n_atom_site_aniso_U_33\n"
+    aniso = (
+        cif_text()
+        + "loop_\n_atom_site_aniso_label\n_atom_site_aniso_U_11\n_atom_site_aniso_U_22\n_atom_site_aniso_U_33\n"
+    )
     aniso += "_atom_site_aniso_U_12\n_atom_site_aniso_U_13\n_atom_site_aniso_U_23\nAu1 0.01 0.012 0.014 0.001 0 0\n"
     c = read_crystal(write_cif(tmp_path, "aniso", aniso))
     # U_eq = trace/3 for a cubic cell (Fischer & Tillmanns 1988, Acta Cryst. C44, 775)
@@ -114,8 +119,14 @@ BAD = {
     "unknown_element": (cif_text(atoms=(("Qq1", "Qq", 0, 0, 0, 1, 0.01),)), "unknown element"),
     "occupancy": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1.5, 0.01),)), "occupancy 1.5 > 1"),
     "negative_u": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, -0.01),)), "negative displacement"),
-    "duplicate_sites": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au2", "Au", 0, 0, 0, 1, 0.01))), "duplicated atom sites"),
-    "duplicate_labels": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au1", "Au", 0.5, 0.5, 0.5, 1, 0.01))), "duplicated atom site label"),
+    "duplicate_sites": (
+        cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au2", "Au", 0, 0, 0, 1, 0.01))),
+        "duplicated atom sites",
+    ),
+    "duplicate_labels": (
+        cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("Au1", "Au", 0.5, 0.5, 0.5, 1, 0.01))),
+        "duplicated atom site label",
+    ),
     "angles": (cif_text(cell=(4, 4, 4, 120, 120, 120)), "impossible cell angles"),
     "angle_range": (cif_text(cell=(4, 4, 4, 90, 190, 90)), "impossible cell angles"),
     "space_group": (cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"), "space group cannot be resolved"),

@@ -156,7 +156,10 @@ def test_dense_nanocrystal_rings_are_not_a_halo(table, diameter_nm, seed):
 def test_a_real_halo_is_not_a_band():
     """The band test must not take a halo that the model describes: the partly crystallised
     Si + Au film and the CeO2-on-a-TiO2 film keep their halos."""
-    for expected in (TAIL + _halo(0.3) + _sharp_rings(1.0), TAIL + _nano_rings_of("CeO2", 4.0, 6.0) + _a_tio2_halo(0.8)):
+    for expected in (
+        TAIL + _halo(0.3) + _sharp_rings(1.0),
+        TAIL + _nano_rings_of("CeO2", 4.0, 6.0) + _a_tio2_halo(0.8),
+    ):
         a = _label(expected, 1)
         assert a.crystallinity.label == "mixed"
         assert not any(r.kind == "band" for r in a.rings) and "unresolved_ring_band" not in a.flags

@@ -40,7 +40,14 @@ def perturbed(g, rel, seed):
 
 
 # pyFAI calibrant tables (NIST SRMs and literature values: an outside source) -> our id
-OUTSIDE_LISTS = {"Au": "Au", "Si": "Si", "CeO2": "CeO2", "ZnO": "ZnO", "TiO2": "TiO2_rutile", "alpha_Al2O3": "Al2O3_corundum"}
+OUTSIDE_LISTS = {
+    "Au": "Au",
+    "Si": "Si",
+    "CeO2": "CeO2",
+    "ZnO": "ZnO",
+    "TiO2": "TiO2_rutile",
+    "alpha_Al2O3": "Al2O3_corundum",
+}
 
 
 @pytest.mark.parametrize("calibrant", sorted(OUTSIDE_LISTS))
@@ -196,8 +203,21 @@ def test_identify_command_writes_contract_files(tmp_path, reference_library, by_
     rings_in = tmp_path / "rings_in.csv"
     rings_in.write_text("\n".join(rows) + "\n")
     out = tmp_path / "out"
-    res = subprocess.run([sys.executable, "-m", "ringid.cli", "identify", str(rings_in), "--library", str(reference_library),
-                          "-o", str(out)], capture_output=True, text=True)
+    res = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "ringid.cli",
+            "identify",
+            str(rings_in),
+            "--library",
+            str(reference_library),
+            "-o",
+            str(out),
+        ],
+        capture_output=True,
+        text=True,
+    )
     assert res.returncode == 0, res.stderr
     with open(out / "rings.csv", newline="") as fh:
         table = list(csv.DictReader(fh))

@@ -40,3 +40,14 @@ def test_every_import_is_absolute_within_the_stages():
             if isinstance(node, ast.ImportFrom) and node.level and not path.is_relative_to(PACKAGE / "commands"):
                 relative.append(f"{path.relative_to(PACKAGE)}:{node.lineno}")
     assert relative == []
+
+
+def test_ruff_finds_nothing():
+    """The linter configured in pyproject.toml (pyflakes and pycodestyle rules, lines ≤ 120) is clean."""
+    import subprocess
+    import sys
+
+    root = PACKAGE.parent
+    run = subprocess.run([sys.executable, "-m", "ruff", "check", "--no-cache", "ringid", "tests", "benchmarks"],
+                         cwd=root, capture_output=True, text=True)
+    assert run.returncode == 0, run.stdout + run.stderr

@@ -191,7 +191,14 @@ def test_reference_library_files(reference_library):
     assert all(r["status"] == "ok" for r in rows), [r for r in rows if r["status"] != "ok"]
     with open(reference_library / "rings" / "Fe3O4.csv", newline="") as fh:
         reader = csv.DictReader(fh)
-        assert reader.fieldnames[:6] == ["d_angstrom", "g_per_nm", "intensity", "multiplicity", "hkl", "double_diffraction"]
+        assert reader.fieldnames[:6] == [
+            "d_angstrom",
+            "g_per_nm",
+            "intensity",
+            "multiplicity",
+            "hkl",
+            "double_diffraction",
+        ]
         assert set(RING_COLUMNS) == set(reader.fieldnames)
         ring_rows = list(reader)
     assert max(float(r["intensity"]) for r in ring_rows) == 100
@@ -231,8 +238,11 @@ def test_nothing_built_exits_1_with_one_line(tmp_path):
     cifs = tmp_path / "cifs"
     cifs.mkdir()
     (cifs / "empty.cif").write_text("")
-    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "build", str(cifs), "-o", str(tmp_path / "lib")],
-                         capture_output=True, text=True)
+    res = subprocess.run(
+        [sys.executable, "-m", "ringid.cli", "library", "build", str(cifs), "-o", str(tmp_path / "lib")],
+        capture_output=True,
+        text=True,
+    )
     assert res.returncode == 1
     assert res.stderr.strip().splitlines()[-1] == f"ringid: error: {cifs}: no phase could be built"
     assert "Traceback" not in res.stderr
@@ -241,10 +251,24 @@ def test_nothing_built_exits_1_with_one_line(tmp_path):
 def test_per_cif_command_index_and_show(tmp_path):
     out = tmp_path / "lib"
     for phase in ("Au", "ZnO"):
-        res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "phase", str(REFERENCE_PHASES / f"{phase}.cif"),
-                              "-o", str(out)], capture_output=True, text=True)
+        res = subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "ringid.cli",
+                "library",
+                "phase",
+                str(REFERENCE_PHASES / f"{phase}.cif"),
+                "-o",
+                str(out),
+            ],
+            capture_output=True,
+            text=True,
+        )
         assert res.returncode == 0, res.stderr
-    res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "index", str(out)], capture_output=True, text=True)
+    res = subprocess.run(
+        [sys.executable, "-m", "ringid.cli", "library", "index", str(out)], capture_output=True, text=True
+    )
     assert res.returncode == 0 and (out / "index.csv").exists()
     res = subprocess.run([sys.executable, "-m", "ringid.cli", "library", "show", "ZnO", "--library", str(out)],
                          capture_output=True, text=True)
@@ -261,7 +285,9 @@ def test_build_is_deterministic(tmp_path):
     assert a == b
     for sub in ("rings", "phases", "reflections"):
         ext = "json" if sub == "phases" else "csv"
-        assert (tmp_path / "a" / sub / f"TiO2_anatase.{ext}").read_bytes() == (tmp_path / "b" / sub / f"TiO2_anatase.{ext}").read_bytes()
+        assert (tmp_path / "a" / sub / f"TiO2_anatase.{ext}").read_bytes() == (
+            tmp_path / "b" / sub / f"TiO2_anatase.{ext}"
+        ).read_bytes()
 
 
 def test_build_library_refuses_missing_folder(tmp_path):

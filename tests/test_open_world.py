@@ -181,7 +181,9 @@ def test_false_identification_rate_holds_with_a_thousand_phase_library(library):
     big = list(library)
     while len(big) < 1000:
         p = library[int(rng.integers(len(library)))]
-        big.append(dataclasses.replace(p, phase=f"{p.phase}_x{len(big)}", d_angstrom=p.d_angstrom * rng.uniform(0.85, 1.15)))
+        big.append(
+            dataclasses.replace(p, phase=f"{p.phase}_x{len(big)}", d_angstrom=p.d_angstrom * rng.uniform(0.85, 1.15))
+        )
     index = index_library(big, decoy_clearance=0.005)
     hits = _reported_share(index, 0.005, 300, seed=7)
     assert _binomial_upper_tail(hits, 300, 0.01) > 1e-3, f"{hits} of 300 random lists got a phase"

@@ -11,23 +11,39 @@ def make_results(tmp_path):
     res = tmp_path / "results"
     good = res / "samples" / "s1"
     good.mkdir(parents=True)
-    (good / "sample.json").write_text(json.dumps({
-        "status": "ok", "crystallinity": "crystalline", "n_rings": 6, "calibration": "c1",
-        "note": '<script>alert("note")</script>', "geometry": {"center_x_px": 10.25, "center_y_px": 11.5, "ellipticity": 0.012},
-        "crystallite_size_nm": 12.34, "flags": ["textured"]}))
+    (good / "sample.json").write_text(
+        json.dumps(
+            {
+                "status": "ok",
+                "crystallinity": "crystalline",
+                "n_rings": 6,
+                "calibration": "c1",
+                "note": '<script>alert("note")</script>',
+                "geometry": {"center_x_px": 10.25, "center_y_px": 11.5, "ellipticity": 0.012},
+                "crystallite_size_nm": 12.34,
+                "flags": ["textured"],
+            }
+        )
+    )
     (good / "identification.json").write_text(json.dumps({
         "phases": ["Au"], "confidence": [0.61], "alternatives": [["Ag"]], "unexplained_rings": 1,
         "fractions_rough": [1.0], "flags": ["ambiguous_isostructural"], "unexplained": [{"d_angstrom": 3.1}]}))
     (good / "rings.csv").write_text("g_per_nm,d_angstrom,kind,phase,hkl\n4.247,2.3546,ring,Au,1 1 1\n")
     bad = res / "samples" / "s2"
     bad.mkdir(parents=True)
-    (bad / "sample.json").write_text(json.dumps({"status": "failed", "error": "img.tif: not an image", "crystallinity": "no_signal"}))
+    (bad / "sample.json").write_text(
+        json.dumps({"status": "failed", "error": "img.tif: not an image", "crystallinity": "no_signal"})
+    )
     (res / "samples" / "s3").mkdir(parents=True)  # the image job never finished
     (res / "library").mkdir()
-    (res / "library" / "index.csv").write_text("phase,formula,space_group,a,b,c,alpha,beta,gamma,n_rings,cif_sha256,status,error,title\n"
-                                               'X,Au,F m -3 m,4,4,4,90,90,90,5,abc,ok,,"<script>t</script> & ""q"""\n')
+    (res / "library" / "index.csv").write_text(
+        "phase,formula,space_group,a,b,c,alpha,beta,gamma,n_rings,cif_sha256,status,error,title\n"
+        'X,Au,F m -3 m,4,4,4,90,90,90,5,abc,ok,,"<script>t</script> & ""q"""\n'
+    )
     (res / "calibrations").mkdir()
-    (res / "calibrations" / "c1.json").write_text(json.dumps({"status": "ok", "camera_constant_A_px": 1003.2, "kind": "standard"}))
+    (res / "calibrations" / "c1.json").write_text(
+        json.dumps({"status": "ok", "camera_constant_A_px": 1003.2, "kind": "standard"})
+    )
     return res
 
 

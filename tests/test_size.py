@@ -132,7 +132,9 @@ def test_scherrer_on_the_sphere_size_profile(diameter_nm):
 
 def _ring(fwhm, eta=0.5, rel_sigma=0.02, g=5.0):
     beta = fwhm / (eta * 2 / math.pi + (1 - eta) * 2 * math.sqrt(math.log(2) / math.pi))
-    return FittedRing(g, 1e-4, fwhm, fwhm * rel_sigma, eta, 1.0, 0.01, "ring", 50.0, 0.01, beta, beta * rel_sigma, 1.0 / beta)
+    return FittedRing(
+        g, 1e-4, fwhm, fwhm * rel_sigma, eta, 1.0, 0.01, "ring", 50.0, 0.01, beta, beta * rel_sigma, 1.0 / beta
+    )
 
 
 def test_ring_as_sharp_as_the_instrument_gives_a_lower_limit():

@@ -185,7 +185,9 @@ def test_workflow_on_slurm_equals_local_run(slurm_cluster, inputs, tmp_path):
     components = profile_group_components()
     comments = [comment for _, comment, _ in jobs.values()]
     assert sum(c.startswith("rule_per_sample_") for c in comments) == math.ceil(len(SAMPLES) / components["per_sample"])
-    assert sum(c.startswith("rule_library_library_phase") for c in comments) == math.ceil(len(PHASES) / components["library"])
+    assert sum(c.startswith("rule_library_library_phase") for c in comments) == math.ceil(
+        len(PHASES) / components["library"]
+    )
     assert not any(c.startswith(("rule_measure", "rule_identify", "rule_library_phase")) for c in comments), comments
     for rule in ("calibration", "library_index", "report"):
         assert sum(c.startswith(f"rule_{rule}") for c in comments) == 1, comments

@@ -16,8 +16,22 @@ pytestmark = pytest.mark.slow
 
 SUBSET = ["np_CeO2_batch_C", "np_Ni_NiO_core_shell", "film_as_deposited", "blank_hole"]
 
-SUMMARY_CONTRACT = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "center_x_px",
-                    "center_y_px", "ellipticity", "crystallite_size_nm", "n_rings", "unexplained_rings", "flags", "error"]
+SUMMARY_CONTRACT = [
+    "sample",
+    "status",
+    "crystallinity",
+    "phases",
+    "alternatives",
+    "confidence",
+    "center_x_px",
+    "center_y_px",
+    "ellipticity",
+    "crystallite_size_nm",
+    "n_rings",
+    "unexplained_rings",
+    "flags",
+    "error",
+]
 
 
 def snakemake(*args, cwd=ROOT, check=True, timeout=900):
@@ -50,7 +64,9 @@ def job_counts(dry_run_output: str) -> dict[str, int]:
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
     base = tmp_path_factory.mktemp("wf")
-    subprocess.run([sys.executable, "-m", "ringid.cli", "demo", str(base / "demo"), "--size-px", "512", "--quiet"], check=True)
+    subprocess.run(
+        [sys.executable, "-m", "ringid.cli", "demo", str(base / "demo"), "--size-px", "512", "--quiet"], check=True
+    )
     with open(base / "demo" / "samples.csv", newline="") as fh:
         rows = [r for r in csv.DictReader(fh)]
     write_sheet(base / "demo" / "subset.csv", [r for r in rows if r["sample"] in SUBSET], fieldnames=list(rows[0]))
@@ -84,7 +100,15 @@ def test_contract_files_and_columns(run):
         rec = json.loads((d / "sample.json").read_text())
         assert {"geometry", "crystallinity", "flags", "timings_s"} <= set(rec)
     cal = json.loads((results / "calibrations" / "cal_Au_film.json").read_text())
-    for key in ("camera_constant_A_px", "center_x_px", "center_y_px", "ellipticity", "ellipse_angle_deg", "voltage_kv", "rings"):
+    for key in (
+        "camera_constant_A_px",
+        "center_x_px",
+        "center_y_px",
+        "ellipticity",
+        "ellipse_angle_deg",
+        "voltage_kv",
+        "rings",
+    ):
         assert key in cal
     # source: the demo's true camera constant (ringid.synthetic.demo, scaled to 512 px) — the simulator's own truth
     from ringid.synthetic.demo import CAMERA_CONSTANT_A_PX

@@ -36,10 +36,18 @@ ROOT = Path(__file__).resolve().parent.parent
 # 10 good rows from the demo patterns that measure fastest at 256² (each under ~6 s on one core;
 # film_anneal_600C takes ~40 s, 700C ~15 s, 800C ~10 s, ZnO rods ~6 s): three images appear
 # twice under another id, which also checks that a result depends on the image, not the row
-GOOD = {"blank_hole": "blank_hole", "film_as_deposited": "film_as_deposited", "np_CeO2_batch_A": "np_CeO2_batch_A",
-        "np_CeO2_batch_B": "np_CeO2_batch_B", "np_CeO2_batch_C": "np_CeO2_batch_C", "film_anneal_300C": "film_anneal_300C",
-        "np_Ni_NiO_core_shell": "np_Ni_NiO_core_shell", "np_CeO2_batch_A_again": "np_CeO2_batch_A",
-        "blank_hole_again": "blank_hole", "film_anneal_300C_again": "film_anneal_300C"}
+GOOD = {
+    "blank_hole": "blank_hole",
+    "film_as_deposited": "film_as_deposited",
+    "np_CeO2_batch_A": "np_CeO2_batch_A",
+    "np_CeO2_batch_B": "np_CeO2_batch_B",
+    "np_CeO2_batch_C": "np_CeO2_batch_C",
+    "film_anneal_300C": "film_anneal_300C",
+    "np_Ni_NiO_core_shell": "np_Ni_NiO_core_shell",
+    "np_CeO2_batch_A_again": "np_CeO2_batch_A",
+    "blank_hole_again": "blank_hole",
+    "film_anneal_300C_again": "film_anneal_300C",
+}
 PHASES = ["Au", "CeO2", "Si", "Ni", "NiO", "TiO2_anatase"]
 
 
@@ -256,7 +264,9 @@ def test_two_runs_give_identical_results(reference_run, interrupted_run):
     assert interrupted_run["final"].returncode == 0
     _assert_same_results(reference_run["results"], interrupted_run["results"])
     # JSON carries timings only under timings_s; CSV carries none
-    rec = json.loads((reference_run["results"] / "samples" / "np_CeO2_batch_A" / "sample.json").read_text(encoding="utf-8"))
+    rec = json.loads(
+        (reference_run["results"] / "samples" / "np_CeO2_batch_A" / "sample.json").read_text(encoding="utf-8")
+    )
     assert "total" in rec["timings_s"]
 
 
@@ -271,7 +281,9 @@ def test_4096_float32_pattern_fits_the_declared_image_job_memory(tmp_path):
     from ringid.synthetic.simulate import simulate_pattern
     from pyFAI.calibrant import get_calibrant
 
-    declared_mb = yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8"))["resources"]["image_mem_mb"]
+    declared_mb = yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8"))["resources"][
+        "image_mem_mb"
+    ]
     cal = get_calibrant("Au")
     d = np.asarray((getattr(cal, "dspacing", None) or cal.dSpacing)[:5])  # source: pyFAI calibrant table Au.D
     k_a_px = 2000.0

@@ -84,7 +84,9 @@ class Calibration:
         """Instrumental ring FWHM (1/nm) at g (1/nm), from the fitted line."""
         return self.fwhm_c0_per_nm + self.fwhm_c1 * np.asarray(g_per_nm, dtype=float)
 
-    def to_record(self, *, pixel_size_um: float | None = None, nominal_camera_constant_A_px: float | None = None) -> dict:
+    def to_record(
+        self, *, pixel_size_um: float | None = None, nominal_camera_constant_A_px: float | None = None
+    ) -> dict:
         """The CAL.json content (DESIGN.md contract fields first)."""
         g = self.geometry
         resid = 100.0 * (self.ring_g_obs_per_nm - self.ring_g_calc_per_nm) / self.ring_g_calc_per_nm
@@ -104,21 +106,37 @@ class Calibration:
             "standard_source": self.standard_source,
             "image": self.image,
             "nominal_camera_constant_A_px": nominal_camera_constant_A_px,
-            "camera_length_mm": (g.camera_constant_A_px * pixel_size_um * 1e-3 / electron_wavelength_angstrom(g.voltage_kv)
-                                 if pixel_size_um else None),
+            "camera_length_mm": (
+                g.camera_constant_A_px * pixel_size_um * 1e-3 / electron_wavelength_angstrom(g.voltage_kv)
+                if pixel_size_um
+                else None
+            ),
             "pixel_size_um": pixel_size_um,
             "n_rings_assigned": int(self.ring_d_calc_angstrom.size),
             "rms_residual_percent": float(np.sqrt(np.mean(resid**2))),
             "rings": [
-                {"hkl": h, "d_calc_angstrom": float(dc), "g_calc_per_nm": float(10.0 / dc), "g_obs_per_nm": float(go),
-                 "g_sigma_per_nm": float(gs), "d_obs_angstrom": float(10.0 / go), "residual_percent": float(r),
-                 "fwhm_per_nm": float(fw)}
-                for h, dc, go, gs, r, fw in zip(self.ring_hkl, self.ring_d_calc_angstrom, self.ring_g_obs_per_nm,
-                                                self.ring_g_sigma_per_nm, resid, self.ring_fwhm_per_nm)
+                {
+                    "hkl": h,
+                    "d_calc_angstrom": float(dc),
+                    "g_calc_per_nm": float(10.0 / dc),
+                    "g_obs_per_nm": float(go),
+                    "g_sigma_per_nm": float(gs),
+                    "d_obs_angstrom": float(10.0 / go),
+                    "residual_percent": float(r),
+                    "fwhm_per_nm": float(fw),
+                }
+                for h, dc, go, gs, r, fw in zip(
+                    self.ring_hkl,
+                    self.ring_d_calc_angstrom,
+                    self.ring_g_obs_per_nm,
+                    self.ring_g_sigma_per_nm,
+                    resid,
+                    self.ring_fwhm_per_nm,
+                )
             ],
             "instrument_fwhm": {
                 "model": "fwhm_per_nm = c0_per_nm + c1 * g_per_nm (pseudo-Voigt FWHM of the standard's rings); "
-                         "eta: their median pseudo-Voigt mixing",
+                "eta: their median pseudo-Voigt mixing",
                 "c0_per_nm": self.fwhm_c0_per_nm,
                 "c1": self.fwhm_c1,
                 "eta": self.instrument_eta,

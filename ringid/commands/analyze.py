@@ -16,7 +16,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     src = p.add_mutually_exclusive_group(required=True)
     src.add_argument("--calibration", metavar="CAL.json", help="calibration record (ringid calibrate / calibration)")
     src.add_argument("--camera-constant-a-px", type=float, metavar="K", help="known camera constant K in Å·px")
-    p.add_argument("--voltage-kv", type=float, metavar="V", help="accelerating voltage (needed with --camera-constant-a-px)")
+    p.add_argument(
+        "--voltage-kv", type=float, metavar="V", help="accelerating voltage (needed with --camera-constant-a-px)"
+    )
     p.add_argument("--library", required=True, metavar="LIB", help="phase library folder (ringid library build)")
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
     p.add_argument("--sample", metavar="ID", help="sample id (default: the image's stem)")
@@ -46,7 +48,10 @@ def run(args) -> int:
             if not args.voltage_kv:
                 raise RingidError(None, "--camera-constant-a-px needs --voltage-kv")
             cal_path = Path(tmp) / "calibration.json"
-            make_calibration(CalibrationRow("given", "constant", args.voltage_kv, camera_constant_A_px=args.camera_constant_a_px), cal_path)
+            make_calibration(
+                CalibrationRow("given", "constant", args.voltage_kv, camera_constant_A_px=args.camera_constant_a_px),
+                cal_path,
+            )
         step("image -> profile -> rings")
         rec = measure_sample(args.image, cal_path, out, sample=sample)
     if rec["status"] != "ok":

@@ -20,10 +20,16 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     sub = parser.add_subparsers(dest="batch_command", metavar="ACTION", required=True)
 
     p = sub.add_parser("measure", help="image job of every sample of a manifest (a sample sheet)")
-    p.add_argument("manifest", metavar="MANIFEST", help="sample sheet CSV: sample,image,calibration[,voltage_kv,note]; - reads it from stdin")
+    p.add_argument(
+        "manifest",
+        metavar="MANIFEST",
+        help="sample sheet CSV: sample,image,calibration[,voltage_kv,note]; - reads it from stdin",
+    )
     p.add_argument("--calibrations-dir", required=True, metavar="DIR",
                    help="folder of the calibration records, DIR/{calibration}.json (ringid calibration)")
-    p.add_argument("-o", "--output", required=True, metavar="SAMPLES_DIR", help="each sample goes to SAMPLES_DIR/{sample}")
+    p.add_argument(
+        "-o", "--output", required=True, metavar="SAMPLES_DIR", help="each sample goes to SAMPLES_DIR/{sample}"
+    )
     add_image_options(p)
     p.set_defaults(func=run_measure)
 

@@ -73,7 +73,9 @@ def run(args) -> int:
                                 false_identification_rate=check_rate(args.false_identification_rate))
     if args.dilation_window is not None and not 0 < args.dilation_window < 0.5:
         raise RingidError(None, f"--dilation-window must be between 0 and 0.5, got {args.dilation_window}")
-    result = identify(obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None)
+    result = identify(
+        obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None
+    )
     write_results(args.output, rows, obs, result, settings,
                   provenance={"rings": str(args.rings), "library": str(args.library), "n_library_phases": len(library)})
     answer = "; ".join(f"{p} ({c:.2f})" for p, c in zip(result.phases, result.confidence)) or "no phase identified"

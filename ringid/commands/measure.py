@@ -11,7 +11,13 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--sample", metavar="ID", help="sample id (default: the image's stem)")
     p.add_argument("--calibration-id", default="", metavar="ID", help="calibration id, for the record")
     p.add_argument("--note", default="", help="free text carried into the report")
-    p.add_argument("--voltage-kv", type=float, default=float("nan"), metavar="V", help="the sample's voltage (checked against the calibration)")
+    p.add_argument(
+        "--voltage-kv",
+        type=float,
+        default=float("nan"),
+        metavar="V",
+        help="the sample's voltage (checked against the calibration)",
+    )
     add_image_options(p)
     p.set_defaults(func=run)
 
@@ -21,8 +27,13 @@ def add_image_options(p) -> None:
     p.add_argument("--max-pixels", type=int, metavar="N", help="refuse larger images")
     p.add_argument("--saturation-level", type=float, metavar="COUNTS", help="mask pixels at or above this level")
     p.add_argument("--mask", metavar="MASK", help="user mask image (non-zero = excluded)")
-    p.add_argument("--min-ring-g-per-nm", type=float, default=1.0, metavar="G",
-                   help="search rings from this g outwards (default 1.0 1/nm, d <= 10 Å; the direct-beam tail is inside)")
+    p.add_argument(
+        "--min-ring-g-per-nm",
+        type=float,
+        default=1.0,
+        metavar="G",
+        help="search rings from this g outwards (default 1.0 1/nm, d <= 10 Å; the direct-beam tail is inside)",
+    )
 
 
 def run(args) -> int:
@@ -36,7 +47,10 @@ def run(args) -> int:
                          max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                          min_ring_g_per_nm=args.min_ring_g_per_nm)
     if rec["status"] == "ok":
-        print(f"{args.image}: {rec['crystallinity']}, {rec['n_rings']} rings ({rec['timings_s']['total']:.2f} s)", file=sys.stderr)
+        print(
+            f"{args.image}: {rec['crystallinity']}, {rec['n_rings']} rings ({rec['timings_s']['total']:.2f} s)",
+            file=sys.stderr,
+        )
     else:
         print(f"ringid: warning: {rec['error']} (recorded as failed)", file=sys.stderr)
     return 0

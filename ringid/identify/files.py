@@ -35,7 +35,9 @@ def read_observed_rings(path: str | os.PathLike) -> tuple[ObservedRings, list[di
     good = np.isfinite(arr["g_per_nm"]) & (arr["g_per_nm"] > 0) & np.isfinite(arr["area"]) & (arr["area"] > 0)
     arr["g_sigma_per_nm"] = np.where(np.isfinite(arr["g_sigma_per_nm"]), arr["g_sigma_per_nm"], 0.0)
     arr["fwhm_per_nm"] = np.where(np.isfinite(arr["fwhm_per_nm"]), arr["fwhm_per_nm"], 0.0)
-    obs = ObservedRings(*(arr[k][good] for k in need), source=str(path), row_index=np.array(sharp_rows, dtype=int)[good])
+    obs = ObservedRings(
+        *(arr[k][good] for k in need), source=str(path), row_index=np.array(sharp_rows, dtype=int)[good]
+    )
     return obs, rows
 
 
@@ -94,7 +96,11 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
     out_rows = []
     for k, r in enumerate(rows):
         asg = by_row.get(k)
-        extra = ([asg.phase, asg.hkl, _fmt(asg.double_diffraction), _fmt(asg.d_calc_angstrom, 7)] if asg else ["", "", "", ""])
+        extra = (
+            [asg.phase, asg.hkl, _fmt(asg.double_diffraction), _fmt(asg.d_calc_angstrom, 7)]
+            if asg
+            else ["", "", "", ""]
+        )
         out_rows.append([r.get(h, "") for h in header[: -len(ASSIGNMENT_COLUMNS)]] + extra)
     write_csv(out / "rings.csv", header, out_rows)
     record = {
@@ -103,20 +109,35 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
         "alternatives": [list(a) for a in result.alternatives],
         "separation_sigma": [round(s, 3) if math.isfinite(s) else None for s in result.separation_sigma],
         "fractions_rough": [round(f, 4) if math.isfinite(f) else None for f in result.fractions_rough],
-        "refined_lattice": [{k: (round(v, 7) if isinstance(v, float) and math.isfinite(v) else None) for k, v in r.items()}
-                            for r in result.refined],
+        "refined_lattice": [
+            {k: (round(v, 7) if isinstance(v, float) and math.isfinite(v) else None) for k, v in r.items()}
+            for r in result.refined
+        ],
         "false_identification_probability": [_round_sig(p) for p in result.false_identification_probability],
         "unexplained_rings": result.unexplained_rings,
         "unexplained_intensity_share": round(result.unexplained_intensity_share, 4),
-        "cubic_lattice_angstrom": _round_sig(result.cubic_lattice_angstrom, 6) if result.cubic_lattice_angstrom else None,
-        "lattice_mismatch": [{k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()}
-                             for m in result.lattice_mismatches],
-        "not_significant": [{k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()} for m in result.rejected],
-        "unexplained": [{"g_per_nm": round(float(obs.g_per_nm[i]), 6), "d_angstrom": round(10.0 / float(obs.g_per_nm[i]), 6),
-                         "area": float(obs.area[i])} for i in result.unexplained],
+        "cubic_lattice_angstrom": _round_sig(result.cubic_lattice_angstrom, 6)
+        if result.cubic_lattice_angstrom
+        else None,
+        "lattice_mismatch": [
+            {k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()} for m in result.lattice_mismatches
+        ],
+        "not_significant": [
+            {k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()} for m in result.rejected
+        ],
+        "unexplained": [
+            {
+                "g_per_nm": round(float(obs.g_per_nm[i]), 6),
+                "d_angstrom": round(10.0 / float(obs.g_per_nm[i]), 6),
+                "area": float(obs.area[i]),
+            }
+            for i in result.unexplained
+        ],
         "flags": list(result.flags),
         "settings": {k: getattr(settings, k) for k in settings.__dataclass_fields__},
-        "screening_note": "Phase identification is a screening result; confirm critical assignments by independent means.",
+        "screening_note": (
+            "Phase identification is a screening result; confirm critical assignments by independent means."
+        ),
     }
     if provenance:
         record["provenance"] = provenance

@@ -166,7 +166,8 @@ class Identification:
     unexplained_intensity_share: float = 0.0  # share of the sharp rings' area that no reported phase explains
     lattice_mismatches: tuple[dict, ...] = ()  # phases that fit only with a dilation outside the window
     rejected: tuple[dict, ...] = ()  # phases the greedy search proposed that the rate control dropped
-    cubic_lattice_angstrom: float | None = None  # a of one cubic lattice that indexes every ring, when it replaced the answer
+    #: a (Å) of one cubic lattice that indexes every ring, when it replaced the answer
+    cubic_lattice_angstrom: float | None = None
 
     @property
     def unexplained_rings(self) -> int:
@@ -262,8 +263,15 @@ def _decoy(ph: _PhaseArrays, k: int, clearance: float) -> _PhaseArrays:
     shift = clearance + DECOY_SHIFT_MIN + DECOY_SHIFT_SPAN * rng.random(len(ph.g))
     g = ph.g * np.exp(shift * rng.choice([-1.0, 1.0], len(ph.g)))
     order = np.argsort(g)
-    return _PhaseArrays(f"decoy:{ph.phase}:{k}", g[order], ph.intensity[order], tuple(np.array(ph.hkl, dtype=object)[order]),
-                        np.zeros(0), (), {})
+    return _PhaseArrays(
+        f"decoy:{ph.phase}:{k}",
+        g[order],
+        ph.intensity[order],
+        tuple(np.array(ph.hkl, dtype=object)[order]),
+        np.zeros(0),
+        (),
+        {},
+    )
 
 
 def index_library(library: list[PhaseRings], decoy_clearance: float = DEFAULT_DECOY_CLEARANCE) -> LibraryIndex:
@@ -280,8 +288,18 @@ def index_library(library: list[PhaseRings], decoy_clearance: float = DEFAULT_DE
         raise RingidError(None, "a library ring has g beyond 1e4 1/nm (d < 0.001 Å)")
     inten = np.concatenate([a.intensity for a in rows]) if rows else np.zeros(0)
     stop = np.cumsum(counts)
-    return LibraryIndex(arrays, decoys, phase_of * KEY_STRIDE + g, g, np.sqrt(inten), inten, phase_of, stop - counts, stop,
-                        decoy_clearance)
+    return LibraryIndex(
+        arrays,
+        decoys,
+        phase_of * KEY_STRIDE + g,
+        g,
+        np.sqrt(inten),
+        inten,
+        phase_of,
+        stop - counts,
+        stop,
+        decoy_clearance,
+    )
 
 
 def _interval_mask(lib: LibraryIndex, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
@@ -372,7 +390,9 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
     near_k = np.full((n_ph, n_obs), -1, dtype=int)
     pos_k = np.full(n_ph, -np.inf)
     n_reach, bound = _reach(lib, obs.g_per_nm, tau, v, u, w_norm, rho0, a_min, a_max)
-    hopeless = (np.arange(n_ph) >= len(lib.phases)) & ((n_reach < settings.min_matched_rings) | (bound < settings.accept_score))
+    hopeless = (np.arange(n_ph) >= len(lib.phases)) & (
+        (n_reach < settings.min_matched_rings) | (bound < settings.accept_score)
+    )
     grid_rows = np.flatnonzero(~hopeless)
     chunk = max(1, GRID_CHUNK_ELEMENTS // max(1, len(alphas) * n_obs))
     for first in range(0, len(grid_rows), chunk):
@@ -552,8 +572,14 @@ def _gains(base_ev, rows_ev, rows_terms, v, u, kappa):
     return (v * np.maximum(u, np.maximum(base_ev, rows_ev))).sum(axis=1) + rows_terms - kappa - before
 
 
-def identify(obs: ObservedRings, library: list[PhaseRings] | LibraryIndex, settings: IdentifySettings = IdentifySettings(), *,
-             g_range_per_nm: tuple[float, float] | None = None, detection_limit_area: float | None = None) -> Identification:
+def identify(
+    obs: ObservedRings,
+    library: list[PhaseRings] | LibraryIndex,
+    settings: IdentifySettings = IdentifySettings(),
+    *,
+    g_range_per_nm: tuple[float, float] | None = None,
+    detection_limit_area: float | None = None,
+) -> Identification:
     """Identify the phases of one sample.
 
     Parameters
@@ -708,7 +734,9 @@ def identify(obs: ObservedRings, library: list[PhaseRings] | LibraryIndex, setti
         flags.append("no_phase_identified")
     if rejected:
         flags.append("not_significant")
-    if unexplained and (unexplained_share >= settings.unidentified_share or len(unexplained) >= settings.unidentified_rings):
+    if unexplained and (
+        unexplained_share >= settings.unidentified_share or len(unexplained) >= settings.unidentified_rings
+    ):
         flags.append("unidentified_phase")
     mismatched = [{"phase": matches[q].phase, "dilation": float(rows.free_dilation[q]),
                    "dilation_sigma": float(rows.free_dilation_sigma[q]), "score": float(rows.score[q])}
@@ -725,12 +753,23 @@ def identify(obs: ObservedRings, library: list[PhaseRings] | LibraryIndex, setti
     if any(alternatives):
         flags.append("ambiguous_isostructural")
     return Identification(
-        phases=tuple(c.phase for c in chosen), confidence=tuple(confidences), alternatives=tuple(alternatives),
-        separation_sigma=tuple(separations), fractions_rough=fractions, refined=refined,
-        assignments=tuple(assignments), unexplained=unexplained, candidates=tuple(candidates), flags=tuple(flags),
-        false_identification_probability=tuple(chosen_p), unexplained_intensity_share=unexplained_share,
-        lattice_mismatches=tuple(mismatched), cubic_lattice_angstrom=cubic_a,
-        rejected=tuple({"phase": c.phase, "score": c.score, "false_identification_probability": p} for c, p in rejected),
+        phases=tuple(c.phase for c in chosen),
+        confidence=tuple(confidences),
+        alternatives=tuple(alternatives),
+        separation_sigma=tuple(separations),
+        fractions_rough=fractions,
+        refined=refined,
+        assignments=tuple(assignments),
+        unexplained=unexplained,
+        candidates=tuple(candidates),
+        flags=tuple(flags),
+        false_identification_probability=tuple(chosen_p),
+        unexplained_intensity_share=unexplained_share,
+        lattice_mismatches=tuple(mismatched),
+        cubic_lattice_angstrom=cubic_a,
+        rejected=tuple(
+            {"phase": c.phase, "score": c.score, "false_identification_probability": p} for c, p in rejected
+        ),
     )
 
 

@@ -9,8 +9,9 @@ one-sample job. A sample whose work raises anything is recorded as failed in its
 the loop goes on with the next one.
 
 The manifest of a batch is a sample sheet (``sample,image,calibration,voltage_kv,note``) with
-absolute image paths, read back with ``ringid.jobs.sheets``; the workflow feeds it on stdin. This module imports only the standard
-library at module level (the workflow imports it when it starts).
+absolute image paths, read back with ``ringid.jobs.sheets``; the workflow feeds it on stdin.
+This module imports only the standard library at module level (the workflow imports it when it
+starts).
 """
 
 from __future__ import annotations
@@ -49,7 +50,9 @@ def manifest_text(rows) -> str:
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(MANIFEST_COLUMNS)
     for r in rows:
-        w.writerow([r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note])
+        w.writerow(
+            [r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note]
+        )
     return buf.getvalue()
 
 

@@ -59,9 +59,15 @@ def read_calibration_record(path: str | os.PathLike) -> tuple[Geometry, dict]:
     k = num("camera_constant_A_px")
     if not k > 0:
         raise RingidError(path, "calibration gives no positive camera_constant_A_px")
-    geom = Geometry(center_x_px=num("center_x_px"), center_y_px=num("center_y_px"), ellipticity=num("ellipticity", 0.0),
-                    ellipse_angle_deg=num("ellipse_angle_deg", 0.0), camera_constant_A_px=k, voltage_kv=num("voltage_kv"),
-                    center_sigma_px=num("center_sigma_px"))
+    geom = Geometry(
+        center_x_px=num("center_x_px"),
+        center_y_px=num("center_y_px"),
+        ellipticity=num("ellipticity", 0.0),
+        ellipse_angle_deg=num("ellipse_angle_deg", 0.0),
+        camera_constant_A_px=k,
+        voltage_kv=num("voltage_kv"),
+        center_sigma_px=num("center_sigma_px"),
+    )
     return geom, rec
 
 
@@ -110,8 +116,14 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
     record = _base_record(sample, image, calibration_id, note)
     try:
         cal_geom, cal_rec = read_calibration_record(calibration_path)
-        if math.isfinite(voltage_kv) and math.isfinite(cal_geom.voltage_kv) and abs(voltage_kv - cal_geom.voltage_kv) > 1e-6:
-            raise RingidError(image, f"recorded at {voltage_kv:g} kV but its calibration is for {cal_geom.voltage_kv:g} kV")
+        if (
+            math.isfinite(voltage_kv)
+            and math.isfinite(cal_geom.voltage_kv)
+            and abs(voltage_kv - cal_geom.voltage_kv) > 1e-6
+        ):
+            raise RingidError(
+                image, f"recorded at {voltage_kv:g} kV but its calibration is for {cal_geom.voltage_kv:g} kV"
+            )
         from ringid.image.stage import process_image
 
         measured_distortion = cal_rec.get("kind", "standard") == "standard"
@@ -130,30 +142,38 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
         size = analysis.size
         sharp = [r for r in analysis.rings if r.kind == "ring"]
         characters = sorted({c.character for c in analysis.characters if c and c.character})
-        record.update({
-            "geometry": {"center_x_px": g.center_x_px, "center_y_px": g.center_y_px, "center_sigma_px": g.center_sigma_px,
-                         "ellipticity": g.ellipticity, "ellipse_angle_deg": g.ellipse_angle_deg,
-                         "camera_constant_A_px": g.camera_constant_A_px, "voltage_kv": g.voltage_kv},
-            "calibration_kind": cal_rec.get("kind", "standard"),
-            "thumbnail_bin_px": bin_px,
-            "crystallinity": analysis.crystallinity.label,
-            "halo_area_fraction": analysis.crystallinity.halo_area_fraction,
-            "n_rings": len(sharp),
-            "n_halos": analysis.crystallinity.n_halos,
-            "crystallite_size_nm": size.size_nm if math.isfinite(size.size_nm) else None,
-            "crystallite_size_sigma_nm": size.size_sigma_nm if math.isfinite(size.size_sigma_nm) else None,
-            "crystallite_size_lower_limit_nm": size.lower_limit_nm if math.isfinite(size.lower_limit_nm) else None,
-            "crystallite_size_meaning": size.meaning,
-            "ring_character": ";".join(characters),
-            "g_range_per_nm": [float(np.nanmin(profile.g_per_nm)), float(np.nanmax(profile.g_per_nm))],
-            "detection_threshold_sigma": analysis.threshold_sigma,
-            "false_alarm_probability": analysis.false_alarm_probability,
-            "chi2_reduced": analysis.chi2_reduced,
-            "masked_fraction": res.mask.fraction_masked,
-            "flags": sorted(set(res.flags) | set(analysis.flags)),
-            "notes": list(res.notes),
-            "warnings": list(res.warnings),
-        })
+        record.update(
+            {
+                "geometry": {
+                    "center_x_px": g.center_x_px,
+                    "center_y_px": g.center_y_px,
+                    "center_sigma_px": g.center_sigma_px,
+                    "ellipticity": g.ellipticity,
+                    "ellipse_angle_deg": g.ellipse_angle_deg,
+                    "camera_constant_A_px": g.camera_constant_A_px,
+                    "voltage_kv": g.voltage_kv,
+                },
+                "calibration_kind": cal_rec.get("kind", "standard"),
+                "thumbnail_bin_px": bin_px,
+                "crystallinity": analysis.crystallinity.label,
+                "halo_area_fraction": analysis.crystallinity.halo_area_fraction,
+                "n_rings": len(sharp),
+                "n_halos": analysis.crystallinity.n_halos,
+                "crystallite_size_nm": size.size_nm if math.isfinite(size.size_nm) else None,
+                "crystallite_size_sigma_nm": size.size_sigma_nm if math.isfinite(size.size_sigma_nm) else None,
+                "crystallite_size_lower_limit_nm": size.lower_limit_nm if math.isfinite(size.lower_limit_nm) else None,
+                "crystallite_size_meaning": size.meaning,
+                "ring_character": ";".join(characters),
+                "g_range_per_nm": [float(np.nanmin(profile.g_per_nm)), float(np.nanmax(profile.g_per_nm))],
+                "detection_threshold_sigma": analysis.threshold_sigma,
+                "false_alarm_probability": analysis.false_alarm_probability,
+                "chi2_reduced": analysis.chi2_reduced,
+                "masked_fraction": res.mask.fraction_masked,
+                "flags": sorted(set(res.flags) | set(analysis.flags)),
+                "notes": list(res.notes),
+                "warnings": list(res.warnings),
+            }
+        )
         record["timings_s"] = {**{k: round(v, 4) for k, v in res.timings_s.items()}, "rings": round(t_rings, 4)}
     except Exception as exc:  # noqa: BLE001 - a failure is a result, recorded with its reason
         _mark_failed(out, record, exc)
@@ -208,8 +228,15 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
             from ringid.library.store import read_phase_rings
 
             rings = read_phase_rings(library_dir, row.standard)
-            cal = calibrate_image(row.image, rings.d_angstrom, voltage_kv=row.voltage_kv, standard_intensity=rings.intensity,
-                                  standard_hkl=rings.hkl, standard=row.standard, standard_source=f"phase library {library_dir}")
+            cal = calibrate_image(
+                row.image,
+                rings.d_angstrom,
+                voltage_kv=row.voltage_kv,
+                standard_intensity=rings.intensity,
+                standard_hkl=rings.hkl,
+                standard=row.standard,
+                standard_source=f"phase library {library_dir}",
+            )
             record = {**base, **cal.to_record()}
         else:
             if row.kind == "constant":

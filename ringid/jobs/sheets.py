@@ -108,7 +108,10 @@ def _check_id(path, line, column, value, problems) -> bool:
         problems.add(f"{path}:{line}", f"empty {column}")
         return False
     if not SAFE_ID.match(value) or ".." in value:
-        problems.add(f"{path}:{line}", f"{column} {value!r} is not a safe file name (letters, digits, '.', '_', '-'; no '/', '..' or spaces)")
+        problems.add(
+            f"{path}:{line}",
+            f"{column} {value!r} is not a safe file name (letters, digits, '.', '_', '-'; no '/', '..' or spaces)",
+        )
         return False
     return True
 
@@ -163,7 +166,11 @@ def read_calibrations(path: str | os.PathLike, phases_dir: str | os.PathLike | N
         volt = _number(path, n, "voltage_kv", r.get("voltage_kv", ""), problems)
         filled = [k for k, cols in kinds.items() if all(r.get(c, "") for c in cols)]
         if not filled:
-            problems.add(f"{path}:{n}", f"calibration {cid!r} gives neither image+standard, camera_constant_A_px, nor camera_length_mm+pixel_size_um")
+            problems.add(
+                f"{path}:{n}",
+                f"calibration {cid!r} gives neither image+standard, camera_constant_A_px, "
+                "nor camera_length_mm+pixel_size_um",
+            )
             continue
         kind = filled[0]
         if kind == "standard":

@@ -238,7 +238,14 @@ def _number(block, tag: str) -> float | None:
 
 
 def _read_cell(path, block) -> tuple[float, float, float, float, float, float]:
-    names = ("_cell_length_a", "_cell_length_b", "_cell_length_c", "_cell_angle_alpha", "_cell_angle_beta", "_cell_angle_gamma")
+    names = (
+        "_cell_length_a",
+        "_cell_length_b",
+        "_cell_length_c",
+        "_cell_angle_alpha",
+        "_cell_angle_beta",
+        "_cell_angle_gamma",
+    )
     values = []
     for tag in names:
         v = _number(block, tag)
@@ -280,7 +287,9 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
         if s.element.atomic_number == 0:
             raise RingidError(path, f"unknown element symbol {symbol!r} at site {label}")
         if s.element.atomic_number > 98:
-            raise RingidError(path, f"element {s.element.name} at site {label} has no tabulated electron scattering factor (Z > 98)")
+            raise RingidError(
+                path, f"element {s.element.name} at site {label} has no tabulated electron scattering factor (Z > 98)"
+            )
         xyz = np.array([s.fract.x, s.fract.y, s.fract.z], dtype=float)
         if not np.all(np.isfinite(xyz)):
             raise RingidError(path, f"site {label} has no numeric fractional coordinates")
@@ -309,10 +318,14 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
     if dup:
         raise RingidError(path, f"duplicated atom site label(s) {', '.join(dup)}")
     if ionic:
-        warnings.append("ionic type symbols scattered as neutral atoms (ITC C Table 4.3.2.2 is for neutral atoms): " + ", ".join(ionic))
+        warnings.append(
+            "ionic type symbols scattered as neutral atoms (ITC C Table 4.3.2.2 is for neutral atoms): "
+            + ", ".join(ionic)
+        )
     if defaulted:
         warnings.append(
-            f"no displacement parameter for site(s) {', '.join(defaulted)}; used the default U = {DEFAULT_U_ISO_ANGSTROM2} Å² (B = {8 * math.pi**2 * DEFAULT_U_ISO_ANGSTROM2:.2f} Å²)"
+            f"no displacement parameter for site(s) {', '.join(defaulted)}; used the default "
+            f"U = {DEFAULT_U_ISO_ANGSTROM2} Å² (B = {8 * math.pi**2 * DEFAULT_U_ISO_ANGSTROM2:.2f} Å²)"
         )
     return sites
 
@@ -327,8 +340,13 @@ def _resolve_space_group(path, block, small, sites, warnings):
         if col:
             symops = [gemmi.cif.as_string(v) for v in col]
             break
-    hall = next((gemmi.cif.as_string(block.find_value(t)) for t in _HALL_TAGS if block.find_value(t) not in (None, "?", ".")), "")
-    hm = next((gemmi.cif.as_string(block.find_value(t)) for t in _HM_TAGS if block.find_value(t) not in (None, "?", ".")), "")
+    hall = next(
+        (gemmi.cif.as_string(block.find_value(t)) for t in _HALL_TAGS if block.find_value(t) not in (None, "?", ".")),
+        "",
+    )
+    hm = next(
+        (gemmi.cif.as_string(block.find_value(t)) for t in _HM_TAGS if block.find_value(t) not in (None, "?", ".")), ""
+    )
     number = next((_number(block, t) for t in _NUMBER_TAGS if _number(block, t) is not None), None)
 
     if symops:
@@ -341,7 +359,9 @@ def _resolve_space_group(path, block, small, sites, warnings):
         if hm and sg is not None:
             named = gemmi.find_spacegroup_by_name(hm)
             if named is not None and named.number != sg.number:
-                warnings.append(f"H-M symbol {hm!r} disagrees with the symmetry operators ({sg.xhm()}); used the operators")
+                warnings.append(
+                    f"H-M symbol {hm!r} disagrees with the symmetry operators ({sg.xhm()}); used the operators"
+                )
         return sg, ops
     if hall:
         try:
@@ -352,7 +372,9 @@ def _resolve_space_group(path, block, small, sites, warnings):
     if hm:
         candidates = _hm_candidates(hm)
         if not candidates:
-            raise RingidError(path, f"the space group cannot be resolved: unknown H-M symbol {hm!r} and no symmetry operators")
+            raise RingidError(
+                path, f"the space group cannot be resolved: unknown H-M symbol {hm!r} and no symmetry operators"
+            )
         if len(candidates) == 1:
             return candidates[0], candidates[0].operations()
         # two origin choices and the file does not say which
@@ -365,7 +387,9 @@ def _resolve_space_group(path, block, small, sites, warnings):
             raise RingidError(path, f"the space group cannot be resolved: IT number {number} is not 1-230")
         warnings.append(f"space group only given by its number {int(number)}; assumed the reference setting {sg.xhm()}")
         return sg, sg.operations()
-    raise RingidError(path, "the space group cannot be resolved: no symmetry operators, Hall symbol, H-M symbol or number")
+    raise RingidError(
+        path, "the space group cannot be resolved: no symmetry operators, Hall symbol, H-M symbol or number"
+    )
 
 
 def _hm_candidates(hm: str):
@@ -492,7 +516,11 @@ def _choose_origin(block, cell, sites, candidates):
         scored.append(((overlaps, not matches, len(fract), sg.ext != "2"), sg))
     scored.sort(key=lambda t: t[0])
     (overlaps, mismatch, _, _), best = scored[0]
-    why = "the other choice overlaps atoms or breaks the formula" if scored[1][0][:2] != (overlaps, mismatch) else "fewest atoms per cell"
+    why = (
+        "the other choice overlaps atoms or breaks the formula"
+        if scored[1][0][:2] != (overlaps, mismatch)
+        else "fewest atoms per cell"
+    )
     if scored[1][0][:3] == scored[0][0][:3]:
         why = "both choices give the same cell contents: check the source"
     return best, why

@@ -99,11 +99,19 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
     write_rings_csv(paths["rings"], rings)
     keep = ring_of >= 0
     order = np.lexsort((refl.hkl[keep][:, 2], refl.hkl[keep][:, 1], refl.hkl[keep][:, 0], ring_of[keep]))
-    hkl, d, f2, rid = refl.hkl[keep][order], refl.d_angstrom[keep][order], refl.f_squared[keep][order], ring_of[keep][order]
+    hkl, d, f2, rid = (
+        refl.hkl[keep][order],
+        refl.d_angstrom[keep][order],
+        refl.f_squared[keep][order],
+        ring_of[keep][order],
+    )
     write_csv(
         paths["reflections"],
         ["h", "k", "l", "d_angstrom", "f_squared", "ring"],
-        ([int(x[0]), int(x[1]), int(x[2]), f"{di:.6f}", f"{fi:.6g}", int(ri)] for x, di, fi, ri in zip(hkl, d, f2, rid)),
+        (
+            [int(x[0]), int(x[1]), int(x[2]), f"{di:.6f}", f"{fi:.6g}", int(ri)]
+            for x, di, fi, ri in zip(hkl, d, f2, rid)
+        ),
     )
     write_json(paths["record"], record)
     return record
@@ -116,7 +124,9 @@ def _site_table(crystal) -> list[dict]:
             continue
         seen.add(lab)
         n = crystal.labels.count(lab)
-        out.append({"label": lab, "element": el, "occupancy": float(occ), "u_iso_angstrom2": float(u), "atoms_in_cell": n})
+        out.append(
+            {"label": lab, "element": el, "occupancy": float(occ), "u_iso_angstrom2": float(u), "atoms_in_cell": n}
+        )
     return out
 
 
@@ -127,7 +137,9 @@ def write_rings_csv(path, rings: PhaseRings) -> None:
         RING_COLUMNS,
         (
             [f"{d:.6f}", f"{10.0 / d:.6f}", f"{i:.6g}", int(m), h, "true" if dd else "false", f"{f:.6g}"]
-            for d, i, m, h, dd, f in zip(rings.d_angstrom, rings.intensity, rings.multiplicity, rings.hkl, rings.double_diffraction, f2)
+            for d, i, m, h, dd, f in zip(
+                rings.d_angstrom, rings.intensity, rings.multiplicity, rings.hkl, rings.double_diffraction, f2
+            )
         ),
     )
 
@@ -149,7 +161,9 @@ def read_phase_rings(library_dir: str | os.PathLike, phase: str) -> PhaseRings:
     """
     record = read_phase_record(library_dir, phase)
     if record.get("status") != "ok":
-        raise RingidError(phase_paths(library_dir, phase)["record"], f"phase {phase!r} failed to build: {record.get('error', '')}")
+        raise RingidError(
+            phase_paths(library_dir, phase)["record"], f"phase {phase!r} failed to build: {record.get('error', '')}"
+        )
     path = phase_paths(library_dir, phase)["rings"]
     try:
         with open(path, newline="", encoding="utf-8") as fh:
@@ -165,9 +179,22 @@ def read_phase_rings(library_dir: str | os.PathLike, phase: str) -> PhaseRings:
         f2 = np.array([float(r.get("f_squared_sum") or "nan") for r in rows])
     except (KeyError, ValueError) as exc:
         raise RingidError(path, f"malformed ring list ({exc})") from None
-    meta = {k: record.get(k) for k in ("formula", "space_group_symbol", "space_group_number", "cell", "crystal_system", "title", "cif_sha256")}
+    meta = {
+        k: record.get(k)
+        for k in (
+            "formula",
+            "space_group_symbol",
+            "space_group_number",
+            "cell",
+            "crystal_system",
+            "title",
+            "cif_sha256",
+        )
+    }
     meta["f_squared_sum"] = f2
-    return PhaseRings(phase=phase, d_angstrom=d, intensity=inten, multiplicity=mult, hkl=hkl, double_diffraction=dd, meta=meta)
+    return PhaseRings(
+        phase=phase, d_angstrom=d, intensity=inten, multiplicity=mult, hkl=hkl, double_diffraction=dd, meta=meta
+    )
 
 
 def list_phases(library_dir: str | os.PathLike) -> list[str]:

@@ -188,7 +188,9 @@ def _representative(hkl: np.ndarray, f2: np.ndarray) -> np.ndarray:
     return hkl[order[-1]]
 
 
-def ring_list(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM, merge_tolerance: float = DEFAULT_MERGE_TOLERANCE):
+def ring_list(
+    crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM, merge_tolerance: float = DEFAULT_MERGE_TOLERANCE
+):
     """Compute the ring list of a crystal.
 
     Returns

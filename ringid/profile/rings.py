@@ -21,11 +21,12 @@ reflective, analytic Jacobian, ``x_scale='jac'``) of pseudo-Voigt components
 A·[η L(g; g0, Γ) + (1−η) G(g; g0, Γ)] with area A over g, done cluster by cluster so every
 problem stays small: a cluster is a run of rings within ±4 FWHM of each other (rings whose
 windows hold each other's cores are fitted together; measured: half the cluster fits of ±1.5
-FWHM and more of the close rings kept; at most 6, split at the widest gap), fitted on its own window of ±8 FWHM (a Lorentzian keeps 96 % of
-its area inside; narrower windows let the local background trade against the tails) with a
-local linear correction on top of the clipped background; the tails of all other components
-are held fixed in its baseline, and the clusters are swept until no baseline changed by
-0.1 σ of a bin since its cluster's last fit (block coordinate descent). Broad windows are
+FWHM and more of the close rings kept; at most 6, split at the widest gap), fitted on its own
+window of ±8 FWHM (a Lorentzian keeps 96 % of its area inside; narrower windows let the local
+background trade against the tails) with a local linear correction on top of the clipped
+background; the tails of all other components are held fixed in its baseline, and the clusters
+are swept until no baseline changed by 0.1 σ of a bin since its cluster's last fit (block
+coordinate descent). Broad windows are
 averaged into groups of bins (≥ 20 per FWHM). Uncertainties are the square roots of the
 diagonal of (JᵀJ)⁻¹·χ²_ν of the cluster fit (local background included). The search runs in
 two stages:
@@ -499,7 +500,9 @@ def _near_rejected(new: Candidate, rejected: list[Candidate]) -> bool:
     """A residual detection within one FWHM of a dropped component (unless much broader: a halo
     under it) is that one again."""
     for c in rejected:
-        if new.fwhm_per_nm < 3.0 * c.fwhm_per_nm and abs(new.g_per_nm - c.g_per_nm) < max(new.fwhm_per_nm, c.fwhm_per_nm):
+        if new.fwhm_per_nm < 3.0 * c.fwhm_per_nm and abs(new.g_per_nm - c.g_per_nm) < max(
+            new.fwhm_per_nm, c.fwhm_per_nm
+        ):
             return True
     return False
 
@@ -759,7 +762,9 @@ def _fit_rings(
     z = detection_threshold(false_alarm_probability, n_res)
     empty = RingFit((), background, background.copy(), math.nan, z, false_alarm_probability, n_res, ())
     if ok.sum() < 8:
-        return RingFit((), background, background.copy(), math.nan, z, false_alarm_probability, n_res, ("no_valid_bins",))
+        return RingFit(
+            (), background, background.copy(), math.nan, z, false_alarm_probability, n_res, ("no_valid_bins",)
+        )
 
     detect = dict(fwhm_min_per_nm=fwhm_min, fwhm_max_per_nm=fwhm_max, threshold_sigma=z)
     fwhm_lo, fwhm_hi = 0.7 * fwhm_narrowest, 1.5 * fwhm_max
@@ -950,7 +955,9 @@ def _fit_rings(
             extra_ = [
                 c
                 for c in detect_rings(g, y - model_, sigma, max_components=max_components, **detect)
-                if c.fwhm_per_nm < ring_hi and _resolved_from(c, have, shape_tolerance) and not _near_rejected(c, rejected)
+                if c.fwhm_per_nm < ring_hi
+                and _resolved_from(c, have, shape_tolerance)
+                and not _near_rejected(c, rejected)
             ][: max(0, min(max_new_per_round, max_components - len(comps_)))]
             if not extra_:
                 return comps_

@@ -81,8 +81,19 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
                 radius = k * g / 10.0 / bin_px
                 a, b = radius / math.sqrt(1 - eps), radius * math.sqrt(1 - eps)
                 colour = "#7fdbff" if r.get("kind", "ring") == "halo" else "#ffffff"
-                ax_img.add_patch(Ellipse(((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5), 2 * a, 2 * b, angle=ang,
-                                         fill=False, lw=0.6, ec=colour, alpha=0.9, ls=(0, (2, 2))))
+                ax_img.add_patch(
+                    Ellipse(
+                        ((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5),
+                        2 * a,
+                        2 * b,
+                        angle=ang,
+                        fill=False,
+                        lw=0.6,
+                        ec=colour,
+                        alpha=0.9,
+                        ls=(0, (2, 2)),
+                    )
+                )
             ax_img.set_xlim(-0.5, thumbnail.shape[1] - 0.5)
             ax_img.set_ylim(thumbnail.shape[0] - 0.5, -0.5)
     if profile and len(profile.get("g_per_nm", [])):
@@ -150,7 +161,9 @@ def calibration_png(path: str | os.PathLike, *, title: str, residuals: list[dict
     ax.axhline(0, color="#888", lw=0.8)
     ax.plot(g, rel, "o", color="#2471a3", ms=4)
     for gi, ri, r in zip(g, rel, residuals):
-        ax.annotate(str(r.get("hkl", "")).replace(" ", ""), (gi, ri), fontsize=6, xytext=(2, 3), textcoords="offset points")
+        ax.annotate(
+            str(r.get("hkl", "")).replace(" ", ""), (gi, ri), fontsize=6, xytext=(2, 3), textcoords="offset points"
+        )
     ax.set_xlabel("g (1/nm)", fontsize=8)
     ax.set_ylabel("Δg/g (%)", fontsize=8)
     ax.set_title(title, fontsize=9)

@@ -46,7 +46,9 @@ def _img(path: Path, alt: str) -> str:
     return f'<img alt="{_e(alt)}" src="data:image/png;base64,{base64.b64encode(data).decode()}">'
 
 
-def _table(header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None) -> str:
+def _table(
+    header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None
+) -> str:
     id_attr = f' id="{_e(table_id)}"' if table_id else ""
     out = [f"<table{id_attr}><thead><tr>"]
     out += [f'<th onclick="sortTable(this)">{_e(h)}</th>' for h in header]
@@ -99,13 +101,22 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
     if rings:
         cols = [c for c in ("kind", "g_per_nm", "d_angstrom", "d_sigma_angstrom", "fwhm_per_nm", "area", "size_nm",
                             "character", "phase", "hkl", "double_diffraction") if c in rings[0]]
-        fmt = {"g_per_nm": ".4f", "d_angstrom": ".4f", "d_sigma_angstrom": ".4f", "fwhm_per_nm": ".3f", "area": ".4g", "size_nm": ".3g"}
+        fmt = {
+            "g_per_nm": ".4f",
+            "d_angstrom": ".4f",
+            "d_sigma_angstrom": ".4f",
+            "fwhm_per_nm": ".3f",
+            "area": ".4g",
+            "size_nm": ".3g",
+        }
         body = [[_num(r[c], fmt[c]) if c in fmt and r[c] not in ("", None) else r[c] for c in cols] for r in rings]
         parts.append(_table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}))
     parts += _identification_notes(ident)
     geo = rec.get("geometry") or {}
     if geo:
-        parts.append('<p class="meta">geometry: ' + ", ".join(f"{_e(k)} = {_e(_num(v, '.6g'))}" for k, v in geo.items()) + "</p>")
+        parts.append(
+            '<p class="meta">geometry: ' + ", ".join(f"{_e(k)} = {_e(_num(v, '.6g'))}" for k, v in geo.items()) + "</p>"
+        )
     parts.append("</div>")
     return "".join(parts)
 
@@ -133,7 +144,9 @@ def _identification_notes(ident: dict) -> list[str]:
     return out
 
 
-def write_report(results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report") -> Path:
+def write_report(
+    results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report"
+) -> Path:
     """Write ``summary.csv`` and ``report.html`` under ``results_dir``; return the report path."""
     results = Path(results_dir)
     rows = write_summary(results, samples)
@@ -156,12 +169,27 @@ def write_report(results_dir: str | os.PathLike, samples: list[str], calibration
     cal_rows = []
     for cal in calibrations:
         rec = _load_json(results / "calibrations" / f"{cal}.json")
-        cal_rows.append([cal, rec.get("status", "failed" if not rec else "ok"), rec.get("kind", ""), rec.get("standard", ""),
-                         _num(rec.get("camera_constant_A_px"), ".6g"), _num(rec.get("camera_constant_sigma_A_px"), ".2g"),
-                         _num(rec.get("ellipticity"), ".5f"), _num(rec.get("ellipse_angle_deg"), ".2f"),
-                         _num(rec.get("voltage_kv"), "g"), rec.get("error", "")])
-    parts.append(_table(["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)", "kV", "error"],
-                        cal_rows, numeric={4, 5, 6, 7, 8}))
+        cal_rows.append(
+            [
+                cal,
+                rec.get("status", "failed" if not rec else "ok"),
+                rec.get("kind", ""),
+                rec.get("standard", ""),
+                _num(rec.get("camera_constant_A_px"), ".6g"),
+                _num(rec.get("camera_constant_sigma_A_px"), ".2g"),
+                _num(rec.get("ellipticity"), ".5f"),
+                _num(rec.get("ellipse_angle_deg"), ".2f"),
+                _num(rec.get("voltage_kv"), "g"),
+                rec.get("error", ""),
+            ]
+        )
+    parts.append(
+        _table(
+            ["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)", "kV", "error"],
+            cal_rows,
+            numeric={4, 5, 6, 7, 8},
+        )
+    )
     for cal in calibrations:
         fig = results / "calibrations" / f"{cal}.png"
         if fig.exists():
@@ -172,7 +200,21 @@ def write_report(results_dir: str | os.PathLike, samples: list[str], calibration
     parts.append("<h2>Phase library</h2>")
     index = _read_csv(results / "library" / "index.csv")
     if index:
-        cols = ["phase", "formula", "space_group", "a", "b", "c", "alpha", "beta", "gamma", "n_rings", "status", "error", "title"]
+        cols = [
+            "phase",
+            "formula",
+            "space_group",
+            "a",
+            "b",
+            "c",
+            "alpha",
+            "beta",
+            "gamma",
+            "n_rings",
+            "status",
+            "error",
+            "title",
+        ]
         parts.append(_table(cols, [[r.get(c, "") for c in cols] for r in index], numeric={3, 4, 5, 6, 7, 8, 9}))
     parts.append("</body></html>\n")
     path = results / "report.html"

@@ -94,7 +94,9 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
         # rings that no reported phase explains: their d (Å) and share of the sharp rings' area
         "unexplained_d_angstrom": ";".join(_num(u.get("d_angstrom"), ".4f") for u in ident.get("unexplained", [])),
         "unexplained_intensity_share": _num(ident.get("unexplained_intensity_share"), ".3f"),
-        "false_identification_probability": ";".join(_num(p, ".2g") for p in ident.get("false_identification_probability", [])),
+        "false_identification_probability": ";".join(
+            _num(p, ".2g") for p in ident.get("false_identification_probability", [])
+        ),
     }
 
 

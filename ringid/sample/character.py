@@ -92,7 +92,9 @@ def ring_character(
 ) -> RingCharacter:
     """Character of one ring from the cake (see module docstring for the statistics)."""
     g = np.asarray(g_per_nm, dtype=float)
-    if not (math.isfinite(ring.g_per_nm) and ring.g_per_nm > 0 and math.isfinite(ring.fwhm_per_nm) and ring.fwhm_per_nm > 0):
+    if not (
+        math.isfinite(ring.g_per_nm) and ring.g_per_nm > 0 and math.isfinite(ring.fwhm_per_nm) and ring.fwhm_per_nm > 0
+    ):
         return UNKNOWN
     cols = np.nonzero(np.abs(g - ring.g_per_nm) <= 0.5 * ring.fwhm_per_nm)[0]
     if cols.size == 0:
@@ -169,13 +171,17 @@ def pattern_character(
         return tuple(UNKNOWN for _ in rings), ()
     cake = np.asarray(profile.cake, dtype=float)
     if cake.ndim != 2 or cake.shape[1] != np.asarray(profile.g_per_nm).size:
-        raise ValueError(f"cake shape {cake.shape} does not match the g grid ({np.asarray(profile.g_per_nm).size} bins)")
+        raise ValueError(
+            f"cake shape {cake.shape} does not match the g grid ({np.asarray(profile.g_per_nm).size} bins)"
+        )
     out = []
     for r in rings:
         if r.kind != "ring":
             out.append(UNKNOWN)
             continue
-        out.append(ring_character(cake, profile.azimuth_deg, profile.g_per_nm, profile.sigma, background, r, thresholds))
+        out.append(
+            ring_character(cake, profile.azimuth_deg, profile.g_per_nm, profile.sigma, background, r, thresholds)
+        )
     flags = []
     grains = [c.n_grains for c in out if c.character != "unknown"]
     if grains and float(np.median(grains)) < thresholds.single_crystal_max_grains:

@@ -57,7 +57,9 @@ class Crystallinity:
     flags: tuple[str, ...] = ()
 
 
-def classify(rings, thresholds: CrystallinityThresholds = CrystallinityThresholds(), *, usable: bool = True) -> Crystallinity:
+def classify(
+    rings, thresholds: CrystallinityThresholds = CrystallinityThresholds(), *, usable: bool = True
+) -> Crystallinity:
     """Classify a sample from its fitted components (:class:`ringid.core.model.Ring` list).
 
     A component is a halo when its FWHM ≥ ``thresholds.halo_min_fwhm_per_nm``, unless the ring

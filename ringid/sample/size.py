@@ -226,16 +226,24 @@ def sample_size(
     rings = tuple(rings)
     no_size = RingSize(math.nan, math.nan, math.nan, math.nan, math.nan)
     per_ring = tuple(
-        ring_size(r, instrument, shape_constant=shape_constant, limit_sigma=limit_sigma) if r.kind == "ring" else no_size
+        ring_size(r, instrument, shape_constant=shape_constant, limit_sigma=limit_sigma)
+        if r.kind == "ring"
+        else no_size
         for r in rings
     )
-    used = [k for k, s in enumerate(per_ring) if math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0]
+    used = [
+        k
+        for k, s in enumerate(per_ring)
+        if math.isfinite(s.breadth_sample_per_nm) and s.breadth_sample_sigma_per_nm > 0
+    ]
     use = [per_ring[k] for k in used]
     if not use:
         return SizeEstimate(math.nan, math.nan, math.nan, 0, shape_constant), per_ring
     mean, sigma = _weighted_mean([s.breadth_sample_per_nm for s in use], [s.breadth_sample_sigma_per_nm for s in use])
     if instrument is None:
-        return SizeEstimate(math.nan, math.nan, shape_constant / (mean + limit_sigma * sigma), len(use), shape_constant), per_ring
+        return SizeEstimate(
+            math.nan, math.nan, shape_constant / (mean + limit_sigma * sigma), len(use), shape_constant
+        ), per_ring
     excess = [(s.breadth_excess_per_nm, s.breadth_excess_sigma_per_nm) for s in use
               if math.isfinite(s.breadth_excess_per_nm) and s.breadth_excess_sigma_per_nm > 0]
     sharp = False

@@ -44,33 +44,77 @@ class DemoPattern:
     extra: dict = field(default_factory=dict)
 
 
-AMORPHOUS_TIO2 = {"composition": {"Ti": 1 / 3, "O": 2 / 3}, "diameter_angstrom": 1.95, "packing_fraction": 0.58, "counts": 25.0}
+AMORPHOUS_TIO2 = {
+    "composition": {"Ti": 1 / 3, "O": 2 / 3},
+    "diameter_angstrom": 1.95,
+    "packing_fraction": 0.58,
+    "counts": 25.0,
+}
 
 SCENARIO = (
     DemoPattern("film_as_deposited", {}, "TiO2 film as deposited (amorphous)", halo=AMORPHOUS_TIO2),
-    DemoPattern("film_anneal_300C", {"TiO2_anatase": 0.35}, "300 °C: first anatase nuclei in amorphous matrix",
-                crystallite_size_nm=6.0, halo=dict(AMORPHOUS_TIO2, counts=18.0)),
+    DemoPattern(
+        "film_anneal_300C",
+        {"TiO2_anatase": 0.35},
+        "300 °C: first anatase nuclei in amorphous matrix",
+        crystallite_size_nm=6.0,
+        halo=dict(AMORPHOUS_TIO2, counts=18.0),
+    ),
     DemoPattern("film_anneal_400C", {"TiO2_anatase": 1.0}, "400 °C: anatase nanocrystals", crystallite_size_nm=8.0),
-    DemoPattern("film_anneal_500C", {"TiO2_anatase": 1.0}, "500 °C: anatase grains grow", crystallite_size_nm=18.0,
-                center_shift_px=(35.0, -20.0)),
-    DemoPattern("film_anneal_600C", {"TiO2_anatase": 1.0, "TiO2_rutile": 0.7}, "600 °C: rutile appears",
-                crystallite_size_nm=25.0, beam_stop=True),
-    DemoPattern("film_anneal_700C", {"TiO2_rutile": 1.0, "TiO2_anatase": 0.25}, "700 °C: mostly rutile",
-                crystallite_size_nm=30.0),
-    DemoPattern("film_anneal_800C", {"TiO2_rutile": 1.0}, "800 °C: coarse rutile (spotty rings)", n_grains=400,
-                center_shift_px=(-60.0, 40.0)),
+    DemoPattern(
+        "film_anneal_500C",
+        {"TiO2_anatase": 1.0},
+        "500 °C: anatase grains grow",
+        crystallite_size_nm=18.0,
+        center_shift_px=(35.0, -20.0),
+    ),
+    DemoPattern(
+        "film_anneal_600C",
+        {"TiO2_anatase": 1.0, "TiO2_rutile": 0.7},
+        "600 °C: rutile appears",
+        crystallite_size_nm=25.0,
+        beam_stop=True,
+    ),
+    DemoPattern(
+        "film_anneal_700C",
+        {"TiO2_rutile": 1.0, "TiO2_anatase": 0.25},
+        "700 °C: mostly rutile",
+        crystallite_size_nm=30.0,
+    ),
+    DemoPattern(
+        "film_anneal_800C",
+        {"TiO2_rutile": 1.0},
+        "800 °C: coarse rutile (spotty rings)",
+        n_grains=400,
+        center_shift_px=(-60.0, 40.0),
+    ),
     DemoPattern("np_CeO2_batch_A", {"CeO2": 1.0}, "CeO2 nanoparticles, short synthesis", crystallite_size_nm=4.0),
     DemoPattern("np_CeO2_batch_B", {"CeO2": 1.0}, "CeO2 nanoparticles, medium synthesis", crystallite_size_nm=7.0),
-    DemoPattern("np_CeO2_batch_C", {"CeO2": 1.0}, "CeO2 nanoparticles, long synthesis", crystallite_size_nm=14.0,
-                dose=0.3),
-    DemoPattern("np_Ni_NiO_core_shell", {"Ni": 1.0, "NiO": 0.6}, "Ni particles with an oxide shell", crystallite_size_nm=12.0),
-    DemoPattern("np_ZnO_rods", {"ZnO": 1.0}, "ZnO nanorods lying on the film (textured)", crystallite_size_nm=20.0,
-                texture_strength=0.8),
-    DemoPattern("blank_hole", {}, "exposure through a hole in the support film (no specimen)", dose=1.0,
-                extra={"background_counts": 40.0}),
+    DemoPattern(
+        "np_CeO2_batch_C", {"CeO2": 1.0}, "CeO2 nanoparticles, long synthesis", crystallite_size_nm=14.0, dose=0.3
+    ),
+    DemoPattern(
+        "np_Ni_NiO_core_shell", {"Ni": 1.0, "NiO": 0.6}, "Ni particles with an oxide shell", crystallite_size_nm=12.0
+    ),
+    DemoPattern(
+        "np_ZnO_rods",
+        {"ZnO": 1.0},
+        "ZnO nanorods lying on the film (textured)",
+        crystallite_size_nm=20.0,
+        texture_strength=0.8,
+    ),
+    DemoPattern(
+        "blank_hole",
+        {},
+        "exposure through a hole in the support film (no specimen)",
+        dose=1.0,
+        extra={"background_counts": 40.0},
+    ),
 )
 
-CALIBRATION = DemoPattern("cal_Au_film", {"Au": 1.0}, "annealed, coarse-grained Au calibration film (rings at the instrumental width)")
+CALIBRATION = DemoPattern(
+    "cal_Au_film", {"Au": 1.0}, "annealed, coarse-grained Au calibration film (rings at the instrumental width)"
+)
 
 
 def _ring_list(library_dir: Path, weights: dict[str, float]):

@@ -172,7 +172,12 @@ def lattice_distance(a: PhaseRings, b: PhaseRings, n_strong: int = 6, g_range_pe
     """Smallest relative scale |ln α| at which the ``n_strong`` strongest rings of ``a`` in
     ``g_range_per_nm`` all lie within 0.3 % of rings of ``b`` (inf if no scale does): how close
     ``a`` comes to a look-alike of ``b``, or to ``b`` with extra rings."""
-    keep_a = ~a.double_diffraction & (a.intensity > 0) & (a.g_per_nm >= g_range_per_nm[0]) & (a.g_per_nm <= g_range_per_nm[1])
+    keep_a = (
+        ~a.double_diffraction
+        & (a.intensity > 0)
+        & (a.g_per_nm >= g_range_per_nm[0])
+        & (a.g_per_nm <= g_range_per_nm[1])
+    )
     ga, ia = a.g_per_nm[keep_a], a.intensity[keep_a]
     gb = np.sort(b.g_per_nm[~b.double_diffraction & (b.intensity > 0)])
     if len(ga) == 0 or len(gb) == 0:

@@ -208,8 +208,16 @@ def simulate_pattern(
         np.minimum(img, np.float32(level), out=img)
 
     n_px = nx * ny
-    hot = rng.choice(n_px, size=int(round(hot_pixel_fraction * n_px)), replace=False) if hot_pixel_fraction else np.zeros(0, int)
-    dead = rng.choice(n_px, size=int(round(dead_pixel_fraction * n_px)), replace=False) if dead_pixel_fraction else np.zeros(0, int)
+    hot = (
+        rng.choice(n_px, size=int(round(hot_pixel_fraction * n_px)), replace=False)
+        if hot_pixel_fraction
+        else np.zeros(0, int)
+    )
+    dead = (
+        rng.choice(n_px, size=int(round(dead_pixel_fraction * n_px)), replace=False)
+        if dead_pixel_fraction
+        else np.zeros(0, int)
+    )
     flat = img.reshape(-1)
     if hot.size:
         flat[hot] = np.minimum(flat[hot] * 20.0 + 2000.0 * dose + 500.0, level if level else np.inf)
