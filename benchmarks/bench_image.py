@@ -34,7 +34,8 @@ from pathlib import Path
 
 import numpy as np
 
-# source: METHODS.md §3 Au kinematic mean-profile areas 111..222 [K]; further rings at 5 (demo values)
+# source: Au kinematic mean-profile areas 111..222, computed with ringid's library from reference_phases/Au.cif
+# (Σ|F|²d², ITC Vol. C Table 4.3.2.2 factors, B = 0.6 Å²); further rings at 5 (demo values)
 AU_INTENSITY_HEAD = [100, 45.5, 23.5, 23.4, 6.4]
 
 

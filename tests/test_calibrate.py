@@ -2,7 +2,7 @@
 
 Outside checks: the standards' ring positions come from pyFAI's calibrant
 d-spacing tables (NIST/literature lattice parameters), not from ringid's own
-library, and the wavelength from the handbook values in DESIGN.md.
+library, and the wavelength from the handbook values in docs/design.md.
 """
 
 import json
@@ -45,7 +45,7 @@ def _masked(sim):
 @pytest.mark.parametrize("nominal_factor", [1.10, 0.90, None])
 def test_camera_constant_from_au_standard(au, nominal_factor):
     d, inten, hkl = au
-    # source: DESIGN.md handbook wavelength 200 kV = 2.5079 pm; L = 400 mm, p = 15 um (typical SAED, METHODS §10)
+    # source: docs/design.md handbook wavelength 200 kV = 2.5079 pm; L = 400 mm, p = 15 um (typical SAED, METHODS §10)
     k_true = nominal_camera_constant_a_px(400.0, 30.0, 200.0)
     assert k_true == pytest.approx(0.025079 * 0.4 / 30e-6, rel=1e-4)
     sim = simulate_pattern(d, inten, shape=SHAPE, camera_constant_A_px=k_true, ellipticity=0.025,
@@ -86,7 +86,7 @@ def test_silicon_standard_and_record_round_trip(tmp_path):
                 "voltage_kv", "rings", "instrument_fwhm", "camera_constant_sigma_A_px"):
         assert key in rec
     assert {"g_obs_per_nm", "g_calc_per_nm", "hkl"} <= set(rec["rings"][0])
-    # source: DESIGN.md handbook wavelength 300 kV = 1.9687 pm; L = K p / lambda
+    # source: docs/design.md handbook wavelength 300 kV = 1.9687 pm; L = K p / lambda
     assert rec["camera_length_mm"] == pytest.approx(cal.geometry.camera_constant_A_px * 14e-3 / 0.019687, rel=1e-4)
     geom, _ = read_calibration(out)
     assert geom.camera_constant_A_px == cal.geometry.camera_constant_A_px and geom.voltage_kv == 300.0
@@ -152,7 +152,7 @@ def test_cli_simulate_then_calibrate(tmp_path, capsys):
     from ringid.cli import main
 
     tif = tmp_path / "au.tif"
-    # source: DESIGN.md handbook wavelength at 200 kV; L = 300 mm, p = 30 um
+    # source: docs/design.md handbook wavelength at 200 kV; L = 300 mm, p = 30 um
     assert main(["simulate", "--pyfai-calibrant", "Au", "--camera-length-mm", "300", "--pixel-size-um", "30",
                  "--shape", "768", "768", "--ellipticity", "0.015", "--ellipse-angle-deg", "60", "--beam-stop",
                  "--seed", "3", "-o", str(tif)]) == 0
@@ -236,7 +236,7 @@ def test_pattern_drawn_by_pyfai_geometry():
     from ringid.core.units import electron_wavelength_angstrom
 
     lam_m = electron_wavelength_angstrom(200.0) * 1e-10
-    # source: DESIGN.md handbook wavelength 200 kV = 2.5079 pm
+    # source: docs/design.md handbook wavelength 200 kV = 2.5079 pm
     assert lam_m == pytest.approx(2.5079e-12, rel=5e-5)
     pixel_m, dist_m, cx, cy = 30e-6, 0.25, 540.3, 490.8
     ai = AzimuthalIntegrator(dist=dist_m, poni1=(cy + 0.5) * pixel_m, poni2=(cx + 0.5) * pixel_m,
@@ -250,7 +250,7 @@ def test_pattern_drawn_by_pyfai_geometry():
     cal = calibrate_pattern(img, None, d, voltage_kv=200.0, standard_hkl=hkl,
                             nominal_camera_constant_A_px=1.08 * k_nominal)
     g = cal.geometry
-    # source: pyFAI convention poni = (pixel index + 0.5)·pixel size (DESIGN.md conventions)
+    # source: pyFAI convention poni = (pixel index + 0.5)·pixel size (docs/design.md conventions)
     assert math.hypot(g.center_x_px - cx, g.center_y_px - cy) < 0.1
     assert g.ellipticity < 5e-4
     assert g.camera_constant_A_px == pytest.approx(k_nominal, rel=5e-4)

@@ -17,7 +17,7 @@ from ringid.image.ellipse import (
 
 @pytest.mark.parametrize("eps,angle", [(0.0, 0.0), (0.01, 30.0), (0.04, -75.0), (0.2, 90.0)])
 def test_distortion_matches_the_contract_convention(eps, angle):
-    # source: DESIGN.md conventions: a ring of true radius R has semi-axes a = R/sqrt(1-eps),
+    # source: docs/design.md conventions: a ring of true radius R has semi-axes a = R/sqrt(1-eps),
     # b = R*sqrt(1-eps), major axis at angle from +x towards +y, area preserved
     a_mat = distortion_matrix(eps, angle)
     assert np.linalg.det(a_mat) == pytest.approx(1.0, abs=1e-12)

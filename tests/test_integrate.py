@@ -29,7 +29,7 @@ def elliptical_ring():
 def test_elliptical_ring_integrates_to_its_true_radius(elliptical_ring):
     sim = elliptical_ring
     prof = integrate_profile(sim.image, None, sim.geometry)
-    g_true = 10.0 / AU_111_ANGSTROM  # source: DESIGN.md, g = 1/d in 1/nm
+    g_true = 10.0 / AU_111_ANGSTROM  # source: docs/design.md, g = 1/d in 1/nm
     # 0.01 px of radius at K = 900 Å·px is 1.1e-4 1/nm
     assert _ring_centroid(prof, g_true) == pytest.approx(g_true, abs=1.1e-4)
     # the distortion is fully undone: the ring is at the same g in every azimuth bin of the cake

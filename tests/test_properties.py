@@ -31,7 +31,7 @@ def test_distortion_map_preserves_area_and_has_the_stated_semi_axes(eps, ang):
     from ringid.image.ellipse import distortion_matrix, undistortion_matrix
 
     a = distortion_matrix(eps, ang)
-    assert abs(np.linalg.det(a) - 1.0) < 1e-12  # area-preserving (DESIGN.md convention)
+    assert abs(np.linalg.det(a) - 1.0) < 1e-12  # area-preserving (docs/design.md convention)
     sv = np.linalg.svd(a, compute_uv=False)  # outside check: numpy's SVD gives the semi-axes of a unit circle
     assert np.allclose(sv, [1 / math.sqrt(1 - eps), math.sqrt(1 - eps)], rtol=1e-12)
     assert np.allclose(undistortion_matrix(eps, ang) @ a, np.eye(2), atol=1e-12)

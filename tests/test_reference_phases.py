@@ -150,7 +150,7 @@ SAME_SOURCE_D_TOLERANCE = 1e-4
 
 # Phase -> an independently certified pyFAI calibrant of the same phase whose cell is NOT
 # the one in our CIF; here the check is only that the two cells agree to 0.1 %, the d-spacing
-# accuracy ringid aims for (DESIGN.md), so either cell gives the same identification.
+# accuracy ringid aims for (docs/design.md), so either cell gives the same identification.
 PYFAI_CALIBRANT_OTHER_SOURCE = {
     "Al2O3_corundum": "alpha_Al2O3_SRM676a_2015",
     "Si": "Si_SRM640d",

@@ -26,7 +26,7 @@ def test_constants_are_codata():
 
 @pytest.mark.parametrize(
     "kv, pm",
-    # source: electron-optics handbook table quoted in DESIGN.md / METHODS.md §1
+    # source: electron-optics handbook table quoted in docs/design.md / METHODS.md §1
     # (a microscope maker's published glossary: 3.7014, 2.5079, 1.9687 pm), given to 5 digits
     [(100, 3.7014), (200, 2.5079), (300, 1.9687), (80, 4.1757), (120, 3.3492)],
 )

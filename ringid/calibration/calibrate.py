@@ -16,7 +16,7 @@ The standard's list comes either from the phase library or, as an outside check,
 from pyFAI's calibrant tables (plain arrays of d and relative intensity).
 
 The standard's own lattice parameter sets the accuracy ceiling: a strained or
-alloyed film shifts K by the same relative amount (DESIGN.md).
+alloyed film shifts K by the same relative amount (docs/design.md).
 """
 
 from __future__ import annotations
@@ -87,7 +87,7 @@ class Calibration:
     def to_record(
         self, *, pixel_size_um: float | None = None, nominal_camera_constant_A_px: float | None = None
     ) -> dict:
-        """The CAL.json content (DESIGN.md contract fields first)."""
+        """The CAL.json content (docs/design.md contract fields first)."""
         g = self.geometry
         resid = 100.0 * (self.ring_g_obs_per_nm - self.ring_g_calc_per_nm) / self.ring_g_calc_per_nm
         rec = {

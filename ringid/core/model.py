@@ -1,6 +1,6 @@
 """Small frozen dataclasses passed between the stages.
 
-Field names follow the output contract columns of DESIGN.md (``_px``, ``_per_nm``,
+Field names follow the output contract columns of docs/design.md (``_px``, ``_per_nm``,
 ``_angstrom``, ``_kv``, ``_deg``). Arrays are numpy arrays; they are not copied.
 Keep this module free of heavy imports (numpy only).
 """
@@ -82,7 +82,7 @@ class PhaseRings:
     """The kinematic ring list of one phase, strongest ring intensity = 100.
 
     intensity is Σ|F|²·d² per ring (the integrated area of the ring over g in an
-    azimuthal-mean profile, DESIGN.md), normalised; double_diffraction marks
+    azimuthal-mean profile, docs/design.md), normalised; double_diffraction marks
     kinematically forbidden rings that double diffraction can light up (intensity 0).
     """
 

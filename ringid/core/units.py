@@ -1,6 +1,6 @@
 """Units and the electron wavelength.
 
-Conventions (DESIGN.md): g = 1/d in 1/nm, d in ångström, camera constant
+Conventions (docs/design.md): g = 1/d in 1/nm, d in ångström, camera constant
 K = λL/p in Å·px so that d = K / R with R in pixels. q = 2π/d appears only at
 the pyFAI boundary.
 """

@@ -1,7 +1,7 @@
 """Elliptical (affine) lens distortion: the map, its inverse, and the joint ring fit.
 
 The projector lenses distort a ring pattern by an area-preserving affine map
-about the pattern centre (DESIGN.md): a ring of true radius R is drawn as an
+about the pattern centre (docs/design.md): a ring of true radius R is drawn as an
 ellipse with semi-axes a = R/√(1−ε) and b = R·√(1−ε), the major axis at angle θ
 from +x towards +y, and every ring shares the same centre, ε and θ. In matrix form
 an observed offset from the centre is ``p − c = A·u`` with
@@ -57,7 +57,7 @@ def undistorted_offsets(shape, center_x_px: float, center_y_px: float, elliptici
                         ellipse_angle_deg: float, dtype=np.float32):
     """Undistorted offsets (ux, uy) in px of every pixel centre of an image of ``shape``.
 
-    Pixel [row, col] has its centre at x = col, y = row (DESIGN.md). Computed by
+    Pixel [row, col] has its centre at x = col, y = row (docs/design.md). Computed by
     broadcasting one row and one column vector, in ``dtype`` (float32 by default:
     2048² costs 2 × 16 MB and a few milliseconds).
     """

@@ -1,7 +1,7 @@
 """Azimuthal integration with pyFAI at a fitted geometry, lens distortion included.
 
 The elliptical lens distortion is an affine map about the pattern centre
-(:mod:`ringid.image.ellipse`); pyFAI's detector tilt is not one (DESIGN.md), so the
+(:mod:`ringid.image.ellipse`); pyFAI's detector tilt is not one (docs/design.md), so the
 distortion is expressed as corrected pixel positions instead. Two equivalent
 routes are provided:
 

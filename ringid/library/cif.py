@@ -30,7 +30,7 @@ from ringid.core.errors import RingidError
 
 #: Default isotropic displacement parameter U (Å²) for sites whose CIF gives none:
 #: 0.0063 Å² is B = 0.5 Å², a typical room-temperature value for metals and simple oxides
-#: (common practice; METHODS.md lists B ≈ 0.6 Au, 0.8 Al, 0.46 Si Å², from memory).
+#: (common practice; room-temperature B is about 0.6 Au, 0.8 Al, 0.46 Si Å², from memory).
 DEFAULT_U_ISO_ANGSTROM2 = 0.0063
 
 #: Two different sites closer than this (Å) must share the position as alternatives

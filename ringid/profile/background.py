@@ -11,10 +11,11 @@ inelastic tail into a gently curved line; then, for window half-widths p = 1 …
 and the result is transformed back. A convex, slowly varying tail survives every step while any
 feature narrower than about the window is clipped down to the chord under it. The window is the
 one physical choice: it is set **wider than the widest amorphous halo** (default half-width
-2 nm⁻¹; first halos have Δ(1/d) ≈ 0.5–1 nm⁻¹, METHODS.md §7), so broad halos and nanocrystal
-rings are clipped off the background and stay in the signal, as they must (METHODS.md §9
-pitfall). A moving-average pre-smoothing over 0.2 nm⁻¹ (Morháč et al. 1997, Nucl. Instrum.
-Methods A401, 113) limits the downward bias that clipping to noise minima would give.
+2 nm⁻¹; first halos have Δ(1/d) ≈ 0.5–1 nm⁻¹, common practice, from memory), so broad halos
+and nanocrystal rings are clipped off the background and stay in the signal, as they must (a
+narrower window would remove real signal). A moving-average pre-smoothing over 0.2 nm⁻¹
+(Morháč et al. 1997, Nucl. Instrum. Methods A401, 113) limits the downward bias that clipping to
+noise minima would give.
 
 The effective-counts scale: for Poisson data the ratio y/σ² is the number of pixels averaged per
 bin, so n = y · median(y/σ²) is in counts and the LLS operator acts on the scale it was made for.

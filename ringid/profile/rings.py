@@ -153,7 +153,7 @@ def pseudo_voigt(g, g0, fwhm, eta, area=1.0):
 def pseudo_voigt_integral_breadth(fwhm, eta):
     """Integral breadth β = area/height of a pseudo-Voigt: β = Γ / [η·2/π + (1−η)·2√(ln2/π)].
 
-    Limits: Gaussian β = 1.0645 Γ, Lorentzian β = (π/2) Γ (METHODS.md §5).
+    Limits: Gaussian β = 1.0645 Γ, Lorentzian β = (π/2) Γ (computed from the two shapes' area/height).
     """
     return fwhm / (eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT)
 
@@ -1288,7 +1288,7 @@ def _fmt(x, digits=6):
 
 
 def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
-    """Write ``rings.csv`` (DESIGN.md contract) atomically, one row per ring, sorted by g.
+    """Write ``rings.csv`` (docs/design.md contract) atomically, one row per ring, sorted by g.
 
     assignments : optional sequence (one per ring) of ``(phase, hkl)`` pairs or None, filled by
         phase identification; the ``phase`` and ``hkl`` columns are empty without it.

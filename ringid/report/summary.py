@@ -2,7 +2,7 @@
 
 What this stage does: read every sample's ``sample.json`` and ``identification.json`` (and
 ``rings.csv``, ``overview.png``), the calibration records and the library index, and write
-``summary.csv`` (one row per sample, DESIGN.md contract) and ``report.html`` (one file,
+``summary.csv`` (one row per sample, docs/design.md contract) and ``report.html`` (one file,
 figures inlined, sortable and filterable summary table). Every text that comes from input
 files (sample ids, notes, CIF titles, errors) is HTML-escaped. What it does not do: compute
 anything about the patterns.

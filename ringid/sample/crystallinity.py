@@ -1,13 +1,13 @@
 """Crystallinity of a sample from its fitted rings and halos.
 
-Labels (DESIGN.md): ``crystalline`` (rings only; includes nanocrystalline films whose rings are
+Labels (docs/design.md): ``crystalline`` (rings only; includes nanocrystalline films whose rings are
 broadened but indexable), ``amorphous`` (only broad halos), ``mixed`` (halo and rings: a partly
 crystallised film), ``no_signal`` (nothing above the detection threshold, or no usable bins).
 
 The physics behind the one width threshold: a ring of FWHM w in g from crystallites of diameter
-D has w ≈ K_w/D with K_w = 1.1067 for spheres on the FWHM (METHODS.md §5). Below about 1.5 nm
+D has w ≈ K_w/D with K_w = 1.1067 for spheres on the FWHM (Langford & Wilson 1978). Below about 1.5 nm
 the "crystallites" are a few atomic shells and diffraction cannot tell them from an amorphous
-structure (METHODS.md §7), so a component broader than K_w/1.5 nm = 0.74 nm⁻¹ is a halo. Sharp
+structure (common practice, from memory), so a component broader than K_w/1.5 nm = 0.74 nm⁻¹ is a halo. Sharp
 rings and nanocrystal rings down to ≈ 2 nm (w ≈ 0.55 nm⁻¹) stay below it; the first halo of the
 random dense packing of :mod:`ringid.synthetic.amorphous` is fitted at ≈ 0.82–0.85 nm⁻¹. Rings of 2 nm
 crystallites that merge (111 + 200) come out as broad as the threshold, which is why a sample
@@ -19,7 +19,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-K_W_SPHERE = 1.1067  # Scherrer constant of spheres on the FWHM (Langford & Wilson 1978; METHODS.md §5)
+K_W_SPHERE = 1.1067  # Scherrer constant of spheres on the FWHM (Langford & Wilson, J. Appl. Cryst. 11, 102, 1978)
 
 
 @dataclass(frozen=True)

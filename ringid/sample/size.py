@@ -5,9 +5,10 @@ ring in g = 1/d after the instrumental part is removed (no cos θ term in g unit
 **Reported D: the diameter of spherical crystallites, K = 4/3 with the integral breadth**
 (Stokes & Wilson 1942; Langford & Wilson 1978, J. Appl. Cryst. 11, 102–113, Table 1: for a
 sphere 1/β = ¾D, the volume-weighted mean column length). The familiar K ≈ 0.9 gives a V^⅓
-or cube-edge length instead, 19 % below the sphere diameter (METHODS.md §5).
+or cube-edge length instead, 19 % below the sphere diameter (same table).
 
-Instrument removal (Voigt-aware, METHODS.md §5): each fitted pseudo-Voigt is split into the
+Instrument removal (Voigt-aware: Langford, J. Appl. Cryst. 11, 10, 1978; de Keijser et al., J. Appl.
+Cryst. 15, 308, 1982): each fitted pseudo-Voigt is split into the
 Lorentzian and Gaussian integral breadths of the Voigt with the same shape factor φ = FWHM/β,
 using the approximations of de Keijser, Langford, Mittemeijer & Vogels (1982, J. Appl. Cryst.
 15, 308–314) to Langford's (1978) Voigt analysis:
@@ -132,7 +133,7 @@ def voigt_integral_breadth(beta_l, beta_g):
 
 
 def pseudo_voigt_breadth(fwhm, eta):
-    """Integral breadth of a pseudo-Voigt, β = (πΓ/2)/[η + (1−η)√(π ln2)] (METHODS.md §5)."""
+    """Integral breadth of a pseudo-Voigt, β = (πΓ/2)/[η + (1−η)√(π ln2)] (computed: area over height)."""
     return (math.pi * np.asarray(fwhm, dtype=float) / 2.0) / (eta + (1.0 - eta) * math.sqrt(math.pi * math.log(2.0)))
 
 

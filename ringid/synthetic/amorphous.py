@@ -27,10 +27,10 @@ cluster cut from the box instead, even with the continuum-sphere term N²⟨f⟩
 subtracted, keeps a small-angle residual from its rough surface whose oscillations (measured:
 bumps of 30 % of the curve at g ≈ 1–2 nm⁻¹ for a-TiO2) look like weak rings.
 
-Note on the a-Si check value of METHODS.md §7: a dense packing of spheres has its first peak at
-Q·r1 ≈ 7–7.7 (r1 the contact distance), i.e. Q ≈ 3.1 Å⁻¹ for Si-sized (2.35 Å) spheres, the
-metallic-glass range; the a-Si first peak at Q ≈ 2.0 Å⁻¹ comes from its tetrahedral network,
-which a dense packing does not reproduce.
+Note on the a-Si first peak (Q ≈ 2.0 Å⁻¹: Dahal, Warren & Biswas, arXiv:2010.16096): a dense
+packing of spheres has its first peak at Q·r1 ≈ 7–7.7 (r1 the contact distance), i.e. Q ≈ 3.1 Å⁻¹
+for Si-sized (2.35 Å) spheres, the metallic-glass range; the a-Si first peak comes from its
+tetrahedral network, which a dense packing does not reproduce.
 """
 
 from __future__ import annotations

@@ -1,6 +1,6 @@
 """Synthetic selected-area ring patterns, for tests, benchmarks and the demo.
 
-The forward model follows DESIGN.md: a ring of d-spacing d lies at true radius
+The forward model follows docs/design.md: a ring of d-spacing d lies at true radius
 R = K/d (K the camera constant in Å·px) and is drawn through the area-preserving
 elliptical distortion of :mod:`ringid.image.ellipse`. The azimuthal-mean profile of a
 ring has an integrated area over g proportional to the listed ring intensity
