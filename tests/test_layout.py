@@ -51,3 +51,20 @@ def test_ruff_finds_nothing():
     run = subprocess.run([sys.executable, "-m", "ruff", "check", "--no-cache", "ringid", "tests", "benchmarks"],
                          cwd=root, capture_output=True, text=True)
     assert run.returncode == 0, run.stdout + run.stderr
+
+
+def test_identification_defaults_have_one_value():
+    """The config schema's identify defaults are the Python constants the code and the CLI use."""
+    import yaml
+
+    from ringid.identify import windows
+
+    schema = yaml.safe_load((PACKAGE.parent / "config" / "config.schema.yaml").read_text(encoding="utf-8"))
+    props = schema["properties"]["identify"]["properties"]
+    assert props["dilation_window_standard"]["default"] == windows.WINDOW_STANDARD
+    assert props["dilation_window_nominal"]["default"] == windows.WINDOW_NOMINAL
+    assert props["false_identification_rate"]["default"] == windows.FALSE_IDENTIFICATION_RATE
+    config = yaml.safe_load((PACKAGE.parent / "config" / "config.yaml").read_text(encoding="utf-8"))
+    assert config["identify"] == {"dilation_window_standard": windows.WINDOW_STANDARD,
+                                  "dilation_window_nominal": windows.WINDOW_NOMINAL,
+                                  "false_identification_rate": windows.FALSE_IDENTIFICATION_RATE}

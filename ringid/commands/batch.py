@@ -12,6 +12,8 @@ on. Exit 0 when every sample's files were written (failed samples included).
 
 from __future__ import annotations
 
+from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD
+
 
 def add_parser(subparsers, name: str, help_text: str) -> None:
     from .measure import add_image_options
@@ -36,13 +38,13 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p = sub.add_parser("identify", help="identification of several measured sample folders")
     p.add_argument("sample_dirs", nargs="+", metavar="SAMPLE_DIR", help="measured sample folders (ringid measure)")
     p.add_argument("--library", required=True, metavar="LIB", help="phase library folder")
-    p.add_argument("--window-standard", type=float, default=0.005, metavar="REL",
-                   help="dilation window for standard/constant calibrations (default 0.005)")
-    p.add_argument("--window-nominal", type=float, default=0.03, metavar="REL",
-                   help="dilation window for nominal calibrations (default 0.03)")
-    p.add_argument("--false-identification-rate", type=float, default=0.01, metavar="RATE",
+    p.add_argument("--window-standard", type=float, default=WINDOW_STANDARD, metavar="REL",
+                   help="dilation window for standard/constant calibrations (default %(default)s)")
+    p.add_argument("--window-nominal", type=float, default=WINDOW_NOMINAL, metavar="REL",
+                   help="dilation window for nominal calibrations (default %(default)s)")
+    p.add_argument("--false-identification-rate", type=float, default=FALSE_IDENTIFICATION_RATE, metavar="RATE",
                    help="report a phase only when the chance that an absent phase scores as well is below RATE, "
-                        "controlled over the phases of a sample (default 0.01)")
+                        "controlled over the phases of a sample (default %(default)s)")
     p.set_defaults(func=run_identify)
 
 

@@ -8,6 +8,8 @@ DIR/identification.json (answer, confidence, alternatives, refined lattice, flag
 
 from __future__ import annotations
 
+from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD
+
 
 def add_parser(subparsers, name: str, help_text: str) -> None:
     p = subparsers.add_parser(name, help=help_text, description=help_text)
@@ -16,10 +18,10 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--sample-dir", metavar="DIR",
                    help="identify a measured sample folder (from ringid measure) instead of RINGS; "
                         "writes its phases.csv, rings.csv, identification.json and overview.png")
-    p.add_argument("--window-standard", type=float, default=0.005, metavar="REL",
-                   help="with --sample-dir: dilation window for standard/constant calibrations (default 0.005)")
-    p.add_argument("--window-nominal", type=float, default=0.03, metavar="REL",
-                   help="with --sample-dir: dilation window for nominal calibrations (default 0.03)")
+    p.add_argument("--window-standard", type=float, default=WINDOW_STANDARD, metavar="REL",
+                   help="with --sample-dir: dilation window for standard/constant calibrations (default %(default)s)")
+    p.add_argument("--window-nominal", type=float, default=WINDOW_NOMINAL, metavar="REL",
+                   help="with --sample-dir: dilation window for nominal calibrations (default %(default)s)")
     p.add_argument("--library", required=True, metavar="LIB", help="phase library folder (ringid library build)")
     p.add_argument("-o", "--output", metavar="DIR", help="folder for phases.csv, rings.csv, identification.json")
     p.add_argument("--calibration-kind", choices=["standard", "constant", "nominal"], default="standard",
@@ -29,9 +31,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--g-range-per-nm", type=float, nargs=2, metavar=("LO", "HI"),
                    help="g range of the profile in which rings could be detected (default: the observed rings)")
     p.add_argument("--phases", nargs="*", metavar="PHASE", help="score only against these phases")
-    p.add_argument("--false-identification-rate", type=float, default=0.01, metavar="RATE",
+    p.add_argument("--false-identification-rate", type=float, default=FALSE_IDENTIFICATION_RATE, metavar="RATE",
                    help="report a phase only when the chance that an absent phase scores as well is below RATE, "
-                        "controlled over the phases of a sample (default 0.01)")
+                        "controlled over the phases of a sample (default %(default)s)")
     p.set_defaults(func=run)
 
 
@@ -48,7 +50,8 @@ def run(args) -> int:
     import sys
 
     from ringid.core.errors import RingidError
-    from ringid.identify.files import WINDOW_BY_CALIBRATION, read_observed_rings, write_results
+    from ringid.identify.files import read_observed_rings, write_results
+    from ringid.identify.windows import WINDOW_BY_CALIBRATION
     from ringid.identify.score import IdentifySettings, identify
     from ringid.library.store import load_library
 

@@ -48,8 +48,6 @@ PHASES_COLUMNS = [
 ]
 ASSIGNMENT_COLUMNS = ["phase", "hkl", "double_diffraction", "d_calc_angstrom"]
 
-#: dilation window by how the sample's camera constant was obtained (issue 5 defaults)
-WINDOW_BY_CALIBRATION = {"standard": 0.005, "constant": 0.005, "nominal": 0.03}
 
 
 def _fmt(x, digits=6) -> str:

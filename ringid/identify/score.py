@@ -79,6 +79,7 @@ import numpy as np
 
 from ringid.core.errors import RingidError
 from ringid.core.model import PhaseRings
+from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD
 
 LN2 = math.log(2.0)
 
@@ -87,7 +88,7 @@ LN2 = math.log(2.0)
 class IdentifySettings:
     """Scoring parameters (config keys of the ``identify`` section; meanings in the module doc)."""
 
-    dilation_window: float = 0.005  # ± relative lattice scale searched: 0.005 standard, 0.03 nominal
+    dilation_window: float = WINDOW_STANDARD  # ± relative lattice scale searched (WINDOW_NOMINAL without a standard)
     dilation_sigma: float | None = None  # prior σ of the dilation; default: window / 2
     residual_calibration_error: float = 0.001  # δ, relative error of g after calibration
     unexplained_ring_cost: float = LN2  # −u
@@ -100,7 +101,7 @@ class IdentifySettings:
     max_phases: int = 3
     alternative_margin: float = math.log(10.0)
     candidate_floor: float = 0.0  # phases.csv lists candidates scoring above this
-    false_identification_rate: float = 0.01  # a phase is reported when its false-identification probability is below
+    false_identification_rate: float = FALSE_IDENTIFICATION_RATE  # report a phase below this probability of a false one
     lattice_mismatch_sigma: float = 2.0  # free dilation this many σ outside the window: a different lattice
     strong_ring_fraction: float = 0.2  # of a phase's visible rings with at least this share of its strongest …
     max_missing_strong: int = 1  # … at most this many may be missing though detectable (dynamical scattering, texture)
@@ -210,7 +211,7 @@ def _phase_arrays(rings: PhaseRings) -> _PhaseArrays:
 # --------------------------------------------------------------------------- scoring
 
 
-DEFAULT_DECOY_CLEARANCE = 0.03  # widest dilation window a default index serves (the nominal window)
+DEFAULT_DECOY_CLEARANCE = WINDOW_NOMINAL  # widest dilation window a default index serves
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,7 @@ from ringid import __version__
 from ringid.core.atomic import atomic_path, write_json
 from ringid.core.errors import RingidError
 from ringid.core.model import Geometry
+from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD, window_for
 
 DEFAULT_MIN_RING_G_PER_NM = 1.0
 
@@ -265,9 +266,9 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
     return record
 
 
-def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = 0.005,
-                    window_nominal: float = 0.03, false_identification_rate: float = 0.01,
-                    library_dir: str = "") -> dict:
+def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = WINDOW_STANDARD,
+                    window_nominal: float = WINDOW_NOMINAL,
+                    false_identification_rate: float = FALSE_IDENTIFICATION_RATE, library_dir: str = "") -> dict:
     """Identification job of one measured sample: phases.csv, rings.csv, identification.json, overview.png.
 
     ``library`` is a list of PhaseRings or a LibraryIndex (index it once, with
@@ -285,7 +286,7 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     if rec.get("status") != "ok":
         return _write_failed_identification(d, rec.get("sample", d.name), rec.get("error", ""))
     kind = rec.get("calibration_kind", "standard")
-    settings = IdentifySettings(dilation_window=window_nominal if kind == "nominal" else window_standard,
+    settings = IdentifySettings(dilation_window=window_for(kind, window_standard, window_nominal),
                                 false_identification_rate=false_identification_rate)
     if not isinstance(library, LibraryIndex):
         library = library_index(library, window_standard, window_nominal)
@@ -297,7 +298,7 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
 
 
-def library_index(library, window_standard: float = 0.005, window_nominal: float = 0.03):
+def library_index(library, window_standard: float = WINDOW_STANDARD, window_nominal: float = WINDOW_NOMINAL):
     """The LibraryIndex of a loaded library (with its decoys) for identifying samples at either window."""
     from ringid.identify.score import index_library
 

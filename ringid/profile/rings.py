@@ -26,9 +26,9 @@ window of ±8 FWHM (a Lorentzian keeps 96 % of its area inside; narrower windows
 background trade against the tails) with a local linear correction on top of the clipped
 background; the tails of all other components are held fixed in its baseline, and the clusters
 are swept until no baseline changed by 0.1 σ of a bin since its cluster's last fit (block
-coordinate descent). Broad windows are
-averaged into groups of bins (≥ 20 per FWHM). Uncertainties are the square roots of the
-diagonal of (JᵀJ)⁻¹·χ²_ν of the cluster fit (local background included). The search runs in
+coordinate descent). Broad windows are averaged into groups of bins (≥ 20 per FWHM).
+Uncertainties are the square roots of the diagonal of (JᵀJ)⁻¹·χ²_ν of the cluster fit (local
+background included). The search runs in
 two stages:
 
 A. the narrow candidates (FWHM below the halo threshold) alone; the least significant member
@@ -51,13 +51,8 @@ their width they merge into a broad feature that stage B fits as a halo, but the
 on it that a smooth halo cannot describe. When χ² under the halo (±FWHM) is above its 1 − α
 quantile and the residual beyond the noise is more than ``band_misfit_fraction`` of the signal,
 the component is reported as an unresolved band of rings (kind "band"), which counts as rings.
-Measured (rutile 4–8 nm, corundum 4–6 nm; benchmarks/bench_ring_accuracy.py): χ²_ν 14–65 and 19–47 % under such bands,
-χ²_ν 0.9–4.1 and 0–9 % under real halos (except one taken only in part: 5.5–5.6 and 13 %).
-
-Known limit (measured): dense broad rings merge into blends. For 21 CeO2 rings of FWHM 0.1 /
-0.2 / 0.3 / 0.45 / 0.6 nm⁻¹ sizes come back +0 / +3 / +9 / +10 / +28 % high, and with the true
-background +0 / −0 / −3 / +30 / +45 %: beyond 0.3 nm⁻¹ no fit of separate rings recovers them
-(benchmarks/bench_ring_accuracy.py).
+The measured figures of these choices (χ² and residual under bands and halos, size bias of dense
+broad rings) are produced by benchmarks/bench_ring_accuracy.py and quoted in docs/rings.md.
 
 :func:`analyze_profile` runs the whole stage: background, detection, fitting, crystallite size,
 crystallinity and (with a cake) ring character, returning a :class:`RingAnalysis`;

@@ -59,9 +59,9 @@ for _batch, _members in BATCHES.items():
             f"{RESULTS}/logs/batches/identify_{_batch}.log",
         params:
             dirs=[f"{RESULTS}/samples/{s}" for s in _members],
-            window_standard=config.get("identify", {}).get("dilation_window_standard", 0.005),
-            window_nominal=config.get("identify", {}).get("dilation_window_nominal", 0.03),
-            false_identification_rate=config.get("identify", {}).get("false_identification_rate", 0.01),
+            window_standard=config["identify"]["dilation_window_standard"],
+            window_nominal=config["identify"]["dilation_window_nominal"],
+            false_identification_rate=config["identify"]["false_identification_rate"],
         threads: 1
         resources:
             mem_mb=mem("cheap"),

@@ -37,7 +37,7 @@ def cal_kind(calibration):
 
 def dilation_window(calibration):
     key = "dilation_window_nominal" if cal_kind(calibration) == "nominal" else "dilation_window_standard"
-    return config.get("identify", {}).get(key, 0.03 if key.endswith("nominal") else 0.005)
+    return config["identify"][key]
 
 
 def sample_image(wildcards):

@@ -19,9 +19,9 @@ rule identify:
         f"{RESULTS}/logs/identify/{{sample}}.log",
     params:
         outdir=lambda wc: f"{RESULTS}/samples/{wc.sample}",
-        window_standard=config.get("identify", {}).get("dilation_window_standard", 0.005),
-        window_nominal=config.get("identify", {}).get("dilation_window_nominal", 0.03),
-        false_identification_rate=config.get("identify", {}).get("false_identification_rate", 0.01),
+        window_standard=config["identify"]["dilation_window_standard"],
+        window_nominal=config["identify"]["dilation_window_nominal"],
+        false_identification_rate=config["identify"]["false_identification_rate"],
     threads: 1
     resources:
         mem_mb=mem("cheap"),
