@@ -6,6 +6,11 @@ import math
 
 import numpy as np
 
+LN2 = math.log(2.0)
+GAUSS_HEIGHT = 2.0 * math.sqrt(LN2 / math.pi)  # peak height × FWHM of a unit-area Gaussian
+LORENTZ_HEIGHT = 2.0 / math.pi  # peak height × FWHM of a unit-area Lorentzian
+
+
 def voigt_as_pseudo_voigt(gauss_fwhm: float, lorentz_fwhm: float) -> tuple[float, float]:
     """Total FWHM and Lorentzian fraction η of a Voigt approximated by a pseudo-Voigt.
 
@@ -28,3 +33,19 @@ def unit_pseudo_voigt(x, fwhm: float, eta: float):
     lorentz = (1.0 / (math.pi * hw)) / (1.0 + (x / hw) ** 2)
     return (1.0 - eta) * gauss + eta * lorentz
 
+
+def pseudo_voigt(g, g0, fwhm, eta, area=1.0):
+    """Area-normalised pseudo-Voigt η·L + (1−η)·G with common FWHM (1/nm); times ``area``."""
+    x = np.asarray(g, dtype=float) - g0
+    u = 4.0 * (x / fwhm) ** 2
+    gauss = GAUSS_HEIGHT / fwhm * np.exp(-LN2 * u)
+    lorentz = LORENTZ_HEIGHT / fwhm / (1.0 + u)
+    return area * (eta * lorentz + (1.0 - eta) * gauss)
+
+
+def pseudo_voigt_integral_breadth(fwhm, eta):
+    """Integral breadth β = area/height of a pseudo-Voigt: β = Γ / [η·2/π + (1−η)·2√(ln2/π)].
+
+    Limits: Gaussian β = 1.0645 Γ, Lorentzian β = (π/2) Γ (computed from the two shapes' area/height).
+    """
+    return fwhm / (eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT)

@@ -67,12 +67,16 @@ from dataclasses import dataclass
 import numpy as np
 
 from ringid.profile.background import DEFAULT_SMOOTH_PER_NM
+from ringid.profile.lineshape import (  # noqa: F401 - pseudo_voigt is part of this stage's interface
+    GAUSS_HEIGHT,
+    LN2,
+    LORENTZ_HEIGHT,
+    pseudo_voigt,
+    pseudo_voigt_integral_breadth,
+)
 from ringid.core.errors import RingidError
 from ringid.core.model import Profile, Ring
 
-LN2 = math.log(2.0)
-GAUSS_HEIGHT = 2.0 * math.sqrt(LN2 / math.pi)  # peak height × FWHM of a unit-area Gaussian
-LORENTZ_HEIGHT = 2.0 / math.pi  # peak height × FWHM of a unit-area Lorentzian
 FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * LN2)
 # The kernel k_s(x) = exp(−x²/2s²) − ½exp(−x²/8s²) gives the largest SNR on a Gaussian peak of
 # standard deviation σ when s = 1.6534 σ (computed numerically by maximising ⟨k_s, G_σ⟩/‖k_s‖).
@@ -134,23 +138,6 @@ class RingFit:
 
 
 # ---------------------------------------------------------------- line shapes
-
-
-def pseudo_voigt(g, g0, fwhm, eta, area=1.0):
-    """Area-normalised pseudo-Voigt η·L + (1−η)·G with common FWHM (1/nm); times ``area``."""
-    x = np.asarray(g, dtype=float) - g0
-    u = 4.0 * (x / fwhm) ** 2
-    gauss = GAUSS_HEIGHT / fwhm * np.exp(-LN2 * u)
-    lorentz = LORENTZ_HEIGHT / fwhm / (1.0 + u)
-    return area * (eta * lorentz + (1.0 - eta) * gauss)
-
-
-def pseudo_voigt_integral_breadth(fwhm, eta):
-    """Integral breadth β = area/height of a pseudo-Voigt: β = Γ / [η·2/π + (1−η)·2√(ln2/π)].
-
-    Limits: Gaussian β = 1.0645 Γ, Lorentzian β = (π/2) Γ (computed from the two shapes' area/height).
-    """
-    return fwhm / (eta * LORENTZ_HEIGHT + (1.0 - eta) * GAUSS_HEIGHT)
 
 
 def _components_and_jacobian(g, params, n_comp, want_jac=True):

@@ -133,7 +133,11 @@ def voigt_integral_breadth(beta_l, beta_g):
 
 
 def pseudo_voigt_breadth(fwhm, eta):
-    """Integral breadth of a pseudo-Voigt, β = (πΓ/2)/[η + (1−η)√(π ln2)] (computed: area over height)."""
+    """Integral breadth of a pseudo-Voigt, β = (πΓ/2)/[η + (1−η)√(π ln2)] (computed: area over height).
+
+    The same quantity as ``ringid.profile.lineshape.pseudo_voigt_integral_breadth``, written another
+    way; replacing one by the other changes sizes in the 16th digit, so they stay apart until a
+    change that may alter the outputs merges them."""
     return (math.pi * np.asarray(fwhm, dtype=float) / 2.0) / (eta + (1.0 - eta) * math.sqrt(math.pi * math.log(2.0)))
 
 
