@@ -11,11 +11,11 @@ import math
 import numpy as np
 import pytest
 
+from ringid.calibration.record import read_calibration_record
 from ringid.calibration.calibrate import (
     assign_rings,
     calibrate_pattern,
     pyfai_calibrant_rings,
-    read_calibration,
     write_calibration,
 )
 from ringid.image.center import refine_sample_center
@@ -88,7 +88,7 @@ def test_silicon_standard_and_record_round_trip(tmp_path):
     assert {"g_obs_per_nm", "g_calc_per_nm", "hkl"} <= set(rec["rings"][0])
     # source: docs/design.md handbook wavelength 300 kV = 1.9687 pm; L = K p / lambda
     assert rec["camera_length_mm"] == pytest.approx(cal.geometry.camera_constant_A_px * 14e-3 / 0.019687, rel=1e-4)
-    geom, _ = read_calibration(out)
+    geom, _ = read_calibration_record(out)
     assert geom.camera_constant_A_px == cal.geometry.camera_constant_A_px and geom.voltage_kv == 300.0
     # the instrumental ring profile the sample stage reads back: width line and shape
     from ringid.jobs.measure import instrument_from_record
@@ -257,3 +257,26 @@ def test_pattern_drawn_by_pyfai_geometry():
     resid = cal.ring_g_obs_per_nm / cal.ring_g_calc_per_nm - 1
     assert np.all(np.abs(resid) < 1e-3)
     assert np.polyfit(cal.ring_g_obs_per_nm, resid, 1)[0] > 0  # the projection term grows with g
+
+
+@pytest.mark.parametrize("record, problem", [
+    ({"status": "failed", "error": "no rings"}, "calibration failed: no rings"),
+    ({"status": "ok", "camera_constant_A_px": 0}, "no positive camera_constant_A_px"),
+    ({"status": "ok"}, "no positive camera_constant_A_px"),
+    (None, "unreadable calibration file"),
+])
+def test_calibration_record_problems_are_one_line_errors(tmp_path, record, problem):
+    path = tmp_path / "cal.json"
+    path.write_text(json.dumps(record) if record is not None else "{not json", encoding="utf-8")
+    with pytest.raises(RingidError, match=problem):
+        read_calibration_record(path)
+    with pytest.raises(RingidError, match="not found"):
+        read_calibration_record(tmp_path / "missing.json")
+
+
+def test_a_known_constant_record_reads_without_a_centre(tmp_path):
+    path = tmp_path / "cal.json"
+    path.write_text(json.dumps({"status": "ok", "camera_constant_A_px": 1003.2, "voltage_kv": 200,
+                                "center_x_px": None, "center_y_px": None}), encoding="utf-8")
+    geom, rec = read_calibration_record(path)
+    assert geom.camera_constant_A_px == 1003.2 and math.isnan(geom.center_x_px) and rec["voltage_kv"] == 200

@@ -482,26 +482,3 @@ def write_calibration(path, calibration: Calibration, **kw) -> None:
     from ringid.core.atomic import write_json
 
     write_json(path, calibration.to_record(**kw))
-
-
-def read_calibration(path) -> tuple[Geometry, dict]:
-    """Read a CAL.json: the Geometry (K, centre, ε, θ, voltage) and the full record."""
-    import json
-
-    try:
-        with open(path, encoding="utf-8") as fh:
-            rec = json.load(fh)
-    except FileNotFoundError:
-        raise RingidError(path, "calibration file not found") from None
-    except (OSError, ValueError) as exc:
-        raise RingidError(path, f"unreadable calibration file ({exc})") from None
-    try:
-        geom = Geometry(center_x_px=float(rec["center_x_px"]), center_y_px=float(rec["center_y_px"]),
-                        ellipticity=float(rec.get("ellipticity") or 0.0),
-                        ellipse_angle_deg=float(rec.get("ellipse_angle_deg") or 0.0),
-                        camera_constant_A_px=float(rec["camera_constant_A_px"]),
-                        voltage_kv=float(rec.get("voltage_kv") or math.nan),
-                        center_sigma_px=float(rec.get("center_sigma_px") or math.nan))
-    except (KeyError, TypeError, ValueError) as exc:
-        raise RingidError(path, f"calibration file lacks a usable field ({exc})") from None
-    return geom, rec

@@ -47,7 +47,7 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     path : path-like
         The pattern (TIFF or .npy).
     calibration : Geometry
-        From :func:`ringid.calibration.calibrate.read_calibration` or a known/nominal constant:
+        From :func:`ringid.calibration.record.read_calibration_record` or a known/nominal constant:
         K (Å·px, required), ε, θ, voltage; its centre is only a fallback.
     fit_ellipse : bool
         Fit the sample's own ε and θ instead of inheriting them (e.g. when the

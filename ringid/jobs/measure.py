@@ -24,7 +24,6 @@ import numpy as np
 from ringid import __version__
 from ringid.core.atomic import atomic_path, write_json
 from ringid.core.errors import RingidError
-from ringid.core.model import Geometry
 from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD, window_for
 
 DEFAULT_MIN_RING_G_PER_NM = 1.0
@@ -38,38 +37,6 @@ def _error_text(exc: BaseException) -> str:
     last = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
     where = f" at {Path(last.filename).name}:{last.lineno}" if last else ""
     return " ".join(f"internal error ({type(exc).__name__}: {exc}){where}".split())
-
-
-def read_calibration_record(path: str | os.PathLike) -> tuple[Geometry, dict]:
-    """Geometry and record of a calibration file; a failed calibration raises RingidError."""
-    import json
-
-    try:
-        rec = json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise RingidError(path, "calibration file not found") from None
-    except (OSError, ValueError) as exc:
-        raise RingidError(path, f"unreadable calibration file ({exc})") from None
-    if rec.get("status", "ok") != "ok":
-        raise RingidError(path, f"calibration failed: {rec.get('error', 'no reason recorded')}")
-
-    def num(key, default=math.nan):
-        v = rec.get(key)
-        return default if v is None else float(v)
-
-    k = num("camera_constant_A_px")
-    if not k > 0:
-        raise RingidError(path, "calibration gives no positive camera_constant_A_px")
-    geom = Geometry(
-        center_x_px=num("center_x_px"),
-        center_y_px=num("center_y_px"),
-        ellipticity=num("ellipticity", 0.0),
-        ellipse_angle_deg=num("ellipse_angle_deg", 0.0),
-        camera_constant_A_px=k,
-        voltage_kv=num("voltage_kv"),
-        center_sigma_px=num("center_sigma_px"),
-    )
-    return geom, rec
 
 
 def trim_profile(profile, min_g_per_nm: float):
@@ -116,6 +83,8 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
     t_start = time.perf_counter()
     record = _base_record(sample, image, calibration_id, note)
     try:
+        from ringid.calibration.record import read_calibration_record
+
         cal_geom, cal_rec = read_calibration_record(calibration_path)
         if (
             math.isfinite(voltage_kv)
