@@ -114,9 +114,11 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
         "false_identification_probability": [_round_sig(p) for p in result.false_identification_probability],
         "unexplained_rings": result.unexplained_rings,
         "unexplained_intensity_share": round(result.unexplained_intensity_share, 4),
-        "cubic_lattice_angstrom": _round_sig(result.cubic_lattice_angstrom, 6)
-        if result.cubic_lattice_angstrom
-        else None,
+        "single_lattice": (
+            {k: (_round_sig(v, 6) if isinstance(v, float) else v) for k, v in result.single_lattice.items()}
+            if result.single_lattice
+            else None
+        ),
         "lattice_mismatch": [
             {k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()} for m in result.lattice_mismatches
         ],
