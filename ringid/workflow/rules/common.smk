@@ -31,15 +31,6 @@ wildcard_constraints:
     phase=r"[^/]+",
 
 
-def cal_kind(calibration):
-    return CALIBRATIONS[calibration].kind
-
-
-def dilation_window(calibration):
-    key = "dilation_window_nominal" if cal_kind(calibration) == "nominal" else "dilation_window_standard"
-    return config["identify"][key]
-
-
 def sample_image(wildcards):
     return SAMPLES[wildcards.sample].image
 
