@@ -574,6 +574,46 @@ def _gains(base_ev, rows_ev, rows_terms, v, u, kappa):
     return (v * np.maximum(u, np.maximum(base_ev, rows_ev))).sum(axis=1) + rows_terms - kappa - before
 
 
+@dataclass(frozen=True, eq=False)
+class _Sample:
+    """One sample's rings scored against the library and its decoys: what the selection steps share."""
+
+    obs: ObservedRings
+    settings: IdentifySettings
+    tau: np.ndarray  # positional tolerance of each ring (1/nm)
+    v: np.ndarray  # ring weights √(A/⟨A⟩)
+    rows: _RowScores
+    matches: list[PhaseMatch]  # the library phases' own best fits (the first rows)
+    arrays_by_name: dict
+    quantum: float  # one chance match's worth of score in this sample
+
+    @property
+    def n(self) -> int:
+        return len(self.obs)
+
+    @property
+    def n_phases(self) -> int:
+        return len(self.matches)
+
+    @property
+    def u(self) -> float:
+        return -self.settings.unexplained_ring_cost
+
+    @property
+    def kappa(self) -> float:
+        return self.settings.phase_penalty
+
+    def false_probability(self, gain, base_ev) -> np.ndarray:
+        """Chance that an absent phase would gain as much given base_ev: the decoys' gains (only
+        decoys that could enter an answer), for the whole library searched."""
+        decoy = slice(self.n_phases, None)
+        rows = self.rows
+        null = np.where(rows.eligible[decoy],
+                        _gains(base_ev, rows.evidence[decoy], rows.phase_terms[decoy], self.v, self.u, self.kappa),
+                        -np.inf)
+        return _family_probability(_tail_probability(gain, null, self.quantum), self.n_phases)
+
+
 def identify(
     obs: ObservedRings,
     library: list[PhaseRings] | LibraryIndex,
@@ -596,141 +636,29 @@ def identify(
         Smallest ring area the profile's noise allows to detect; default: the weakest observed
         ring's area.
     """
-    n = len(obs)
-    if isinstance(library, LibraryIndex):
-        lib = library
-        if settings.dilation_window > lib.decoy_clearance + 1e-12:
-            raise ValueError(f"dilation window {settings.dilation_window} is wider than the index's decoy clearance "
-                             f"{lib.decoy_clearance}: index the library with decoy_clearance ≥ the window")
-    else:
-        lib = index_library(library, max(settings.dilation_window, DEFAULT_DECOY_CLEARANCE))
-    arrays = lib.phases
-    if n == 0:
+    lib = _index_for(library, settings)
+    if len(obs) == 0:
         return Identification((), (), (), (), (), (), (), (), (), ("no_rings",))
-    if g_range_per_nm is None:
-        g_lo = float(np.min(obs.g_per_nm - 2 * obs.fwhm_per_nm))
-        g_hi = float(np.max(obs.g_per_nm + 2 * obs.fwhm_per_nm))
-    else:
-        g_lo, g_hi = g_range_per_nm
-    g_lo = max(g_lo, 1e-3)
-    a_lim = float(detection_limit_area) if detection_limit_area else float(np.min(obs.area))
-    tau = np.sqrt(obs.g_sigma_per_nm**2 + (settings.residual_calibration_error * obs.g_per_nm) ** 2)
-    v = np.sqrt(obs.area / np.mean(obs.area))
-    v = v / v.mean()
-    u = -settings.unexplained_ring_cost
-    kappa = settings.phase_penalty
-    step = max(float(np.min(tau / obs.g_per_nm)), 1e-5)  # one τ: the least-squares step refines α
-    n_steps = int(math.ceil(settings.dilation_window / step))
-    alphas = 1.0 + np.linspace(-settings.dilation_window, settings.dilation_window, 2 * n_steps + 1)
-
-    rows = _score_rows(lib, obs, tau, v, settings, g_lo, g_hi, a_lim, alphas)
-    n_ph = len(arrays)
-    matches = [_phase_match(lib, rows, p) for p in range(n_ph)]
-    arrays_by_name = {a.phase: a for a in arrays}
-    decoy = slice(n_ph, lib.n_rows)
-    decoy_ev, decoy_terms, decoy_ok = rows.evidence[decoy], rows.phase_terms[decoy], rows.eligible[decoy]
-    # one chance match's worth of score in this sample: the decoys' typical matched-ring evidence
-    chance = (v * (rows.evidence[decoy] - u))[rows.evidence[decoy] >= 0]
-    quantum = float(np.median(chance)) if chance.size else float(np.median(v) * (math.log(g_hi - g_lo) - u))
-    quantum = max(quantum, 1.0)
-
-    def false_probability(gain, base_ev):
-        """Chance that an absent phase would gain as much given base_ev: the decoys' gains
-        (only decoys that could enter an answer), for the whole library searched."""
-        null = np.where(decoy_ok, _gains(base_ev, decoy_ev, decoy_terms, v, u, kappa), -np.inf)
-        return _family_probability(_tail_probability(gain, null, quantum), n_ph)
-
-    # greedy selection; each step's gain gets its false-identification probability
-    chosen: list[PhaseMatch] = []
-    chosen_p: list[float] = []
-    eligible = [m for m, ok in zip(matches, rows.eligible[:n_ph]) if ok]
-    while len(chosen) < settings.max_phases:
-        base_ev = np.max([c.ring_evidence for c in chosen], axis=0) if chosen else np.full(n, -np.inf)
-        best, best_gain = None, 0.0
-        for m in eligible:
-            if any(m is c for c in chosen):
-                continue
-            gain = _set_score(chosen + [m], v, u, kappa) - _set_score(chosen, v, u, kappa)
-            explains_new = not chosen or np.any((m.ring_evidence >= 0) & (base_ev < 0))
-            if explains_new and gain > best_gain:
-                best, best_gain = m, gain
-        if best is None:
-            break
-        chosen.append(best)
-        chosen_p.append(float(false_probability(best_gain, base_ev)[0]))
-    n_kept = _forward_stop(chosen_p, settings.false_identification_rate)
-    rejected = [(c, p) for c, p in zip(chosen[n_kept:], chosen_p[n_kept:])]
-    chosen, chosen_p = chosen[:n_kept], chosen_p[:n_kept]
-    current = _set_score(chosen, v, u, kappa)
-
-    # confidence and alternatives: swap each chosen phase for every other library phase that could
-    # enter an answer, or leave it out; then the chance that it is an absent phase's chance match
-    all_ev = rows.evidence[:n_ph]
-    all_terms = rows.phase_terms[:n_ph]
-    chosen_ids = {id(c) for c in chosen}
-    swappable = np.array([id(m) not in chosen_ids for m in matches]) & ~rows.lattice_mismatch[:n_ph]
-    sigma_alpha = settings.dilation_sigma or settings.dilation_window / 2
-    confidences, alternatives, separations = [], [], []
-    assignments = _assign_rings(chosen, arrays_by_name, obs, tau)
-    unexplained = tuple(i for i in range(n) if assignments[i] is None)
+    ctx = _score_sample(obs, lib, settings, g_range_per_nm, detection_limit_area)
+    chosen, chosen_p, rejected = _select(ctx)
+    assignments = _assign_rings(chosen, ctx.arrays_by_name, obs, ctx.tau)
+    unexplained = tuple(i for i in range(ctx.n) if assignments[i] is None)
     unexplained_share = float(obs.area[list(unexplained)].sum() / obs.area.sum()) if unexplained else 0.0
-    for p, p_false in zip(chosen, chosen_p):
-        others = [c for c in chosen if c is not p]
-        s_without = _set_score(others, v, u, kappa)
-        base_ev = np.max([c.ring_evidence for c in others], axis=0) if others else np.full(n, -np.inf)
-        swap = (v * np.maximum(u, np.maximum(base_ev, all_ev))).sum(axis=1) + all_terms
-        swap += sum(c.phase_terms for c in others) - kappa * (len(others) + 1)
-        swap = np.where(swappable, swap, -np.inf)
-        denom = 1.0 + math.exp(min(50.0, s_without - current)) + float(np.sum(np.exp(np.minimum(50.0, swap - current))))
-        # closed world (other library phases, or none) × not a chance match × the share of the ring
-        # area the answer explains (rings left over may belong to an absent phase whose lattice the
-        # match is only a part of, e.g. bcc(a) rings are among those of fcc(a·√2))
-        confidences.append((1.0 - unexplained_share) / denom / (1.0 + null_bayes_factor(p_false)))
-        close = np.flatnonzero(current - swap < settings.alternative_margin)
-        close = close[np.argsort(-swap[close], kind="stable")]
-        alternatives.append(tuple(matches[q].phase for q in close))
-        if swappable.any():
-            q_best = matches[int(np.argmax(swap))]
-            sig = math.sqrt(sigma_alpha**2 + (p.dilation_sigma if math.isfinite(p.dilation_sigma) else 0) ** 2)
-            g_ratio = _lattice_ratio(arrays_by_name[p.phase], arrays_by_name[q_best.phase])
-            separations.append(abs(math.log(g_ratio)) / sig if math.isfinite(g_ratio) else math.nan)
-        else:
-            separations.append(math.nan)
+    confidences, alternatives, separations = _confidences(ctx, chosen, chosen_p, unexplained_share)
 
     # one lattice that indexes every ring is a simpler answer than library phases that explain only
     # some of them (the rings of bcc(a) are among those of fcc(a·√2); a wurtzite-type cell holds the
     # rings of a diamond-type one), unless it is a chosen phase's own lattice with a ring that only
     # double diffraction or an impurity explains
-    lattice = single_lattice(obs.g_per_nm, tau) if chosen and unexplained else None
-    if lattice is not None and not any(_own_lattice(c, arrays_by_name[c.phase], lattice) for c in chosen):
+    lattice = single_lattice(obs.g_per_nm, ctx.tau) if chosen and unexplained else None
+    if lattice is not None and not any(_own_lattice(c, ctx.arrays_by_name[c.phase], lattice) for c in chosen):
         rejected = list(zip(chosen, chosen_p)) + rejected
         chosen, chosen_p, confidences, alternatives, separations = [], [], [], [], []
-        assignments = [None] * n
-        unexplained, unexplained_share = tuple(range(n)), 1.0
+        assignments = [None] * ctx.n
+        unexplained, unexplained_share = tuple(range(ctx.n)), 1.0
     else:
         lattice = None
-    fractions = _rough_fractions(chosen, arrays_by_name)
-    refined = tuple(_refine_lattice(c, arrays_by_name[c.phase], obs, tau, assignments) for c in chosen)
-
-    # every library phase's own false-identification probability, as if it were the first phase
-    single_p = false_probability(rows.score[:n_ph] - kappa, np.full(n, -np.inf))
-    candidates = []
-    for m in sorted(matches, key=lambda m: (-m.score, m.phase)):
-        in_answer = any(m is c for c in chosen)
-        if m.score <= settings.candidate_floor and not in_answer:
-            continue
-        q = matches.index(m)
-        candidates.append({
-            "phase": m.phase, "score": m.score, "dilation": m.dilation, "dilation_sigma": m.dilation_sigma,
-            "n_matched": m.n_matched, "missing_strong_rings": ";".join(m.missing_strong),
-            "n_missing_strong": len(m.missing_strong), "explained_intensity_share": m.explained_share,
-            "in_answer": in_answer,
-            "confidence": next((conf for c, conf in zip(chosen, confidences) if c is m), math.nan),
-            "false_identification_probability": float(single_p[q]) if rows.eligible[q] else math.nan,
-            "free_dilation": float(rows.free_dilation[q]), "free_dilation_sigma": float(rows.free_dilation_sigma[q]),
-            "lattice_mismatch": bool(rows.lattice_mismatch[q]),
-            "n_missing_major": int(rows.n_missing_top[q]),
-        })
+    mismatched = _lattice_mismatches(ctx, chosen)
 
     flags = []
     if not chosen:
@@ -741,14 +669,6 @@ def identify(
         unexplained_share >= settings.unidentified_share or len(unexplained) >= settings.unidentified_rings
     ):
         flags.append("unidentified_phase")
-    mismatched = [{"phase": matches[q].phase, "dilation": float(rows.free_dilation[q]),
-                   "dilation_sigma": float(rows.free_dilation_sigma[q]), "score": float(rows.score[q])}
-                  for q in np.flatnonzero(rows.lattice_mismatch[:n_ph] & (rows.score[:n_ph] >= settings.accept_score)
-                                          & (rows.n_matched[:n_ph] >= settings.min_matched_rings))]
-    # a look-alike matters when nothing is reported or when it scores above the answer
-    best_reported = max((c.score for c in chosen), default=-math.inf)
-    mismatched = [m for m in mismatched if m["score"] > best_reported]
-    mismatched.sort(key=lambda r: (-r["score"], r["phase"]))
     if mismatched:
         flags.append("lattice_mismatch")
     if lattice is not None:
@@ -760,11 +680,11 @@ def identify(
         confidence=tuple(confidences),
         alternatives=tuple(alternatives),
         separation_sigma=tuple(separations),
-        fractions_rough=fractions,
-        refined=refined,
+        fractions_rough=_rough_fractions(chosen, ctx.arrays_by_name),
+        refined=tuple(_refine_lattice(c, ctx.arrays_by_name[c.phase], obs, ctx.tau, assignments) for c in chosen),
         assignments=tuple(assignments),
         unexplained=unexplained,
-        candidates=tuple(candidates),
+        candidates=tuple(_candidates(ctx, chosen, confidences)),
         flags=tuple(flags),
         false_identification_probability=tuple(chosen_p),
         unexplained_intensity_share=unexplained_share,
@@ -774,6 +694,147 @@ def identify(
             {"phase": c.phase, "score": c.score, "false_identification_probability": p} for c, p in rejected
         ),
     )
+
+
+def _index_for(library, settings: IdentifySettings) -> LibraryIndex:
+    """The library's index (with decoys clear of the window), checking one that is given."""
+    if not isinstance(library, LibraryIndex):
+        return index_library(library, max(settings.dilation_window, DEFAULT_DECOY_CLEARANCE))
+    if settings.dilation_window > library.decoy_clearance + 1e-12:
+        raise ValueError(f"dilation window {settings.dilation_window} is wider than the index's decoy clearance "
+                         f"{library.decoy_clearance}: index the library with decoy_clearance ≥ the window")
+    return library
+
+
+def _score_sample(obs, lib: LibraryIndex, settings, g_range_per_nm, detection_limit_area) -> _Sample:
+    """Score every library phase and decoy on the sample's rings over the dilation window."""
+    if g_range_per_nm is None:
+        g_lo = float(np.min(obs.g_per_nm - 2 * obs.fwhm_per_nm))
+        g_hi = float(np.max(obs.g_per_nm + 2 * obs.fwhm_per_nm))
+    else:
+        g_lo, g_hi = g_range_per_nm
+    g_lo = max(g_lo, 1e-3)
+    a_lim = float(detection_limit_area) if detection_limit_area else float(np.min(obs.area))
+    tau = np.sqrt(obs.g_sigma_per_nm**2 + (settings.residual_calibration_error * obs.g_per_nm) ** 2)
+    v = np.sqrt(obs.area / np.mean(obs.area))
+    v = v / v.mean()
+    u = -settings.unexplained_ring_cost
+    step = max(float(np.min(tau / obs.g_per_nm)), 1e-5)  # one τ: the least-squares step refines α
+    n_steps = int(math.ceil(settings.dilation_window / step))
+    alphas = 1.0 + np.linspace(-settings.dilation_window, settings.dilation_window, 2 * n_steps + 1)
+
+    rows = _score_rows(lib, obs, tau, v, settings, g_lo, g_hi, a_lim, alphas)
+    n_ph = len(lib.phases)
+    decoy = slice(n_ph, lib.n_rows)
+    # one chance match's worth of score in this sample: the decoys' typical matched-ring evidence
+    chance = (v * (rows.evidence[decoy] - u))[rows.evidence[decoy] >= 0]
+    quantum = float(np.median(chance)) if chance.size else float(np.median(v) * (math.log(g_hi - g_lo) - u))
+    return _Sample(obs=obs, settings=settings, tau=tau, v=v, rows=rows,
+                   matches=[_phase_match(lib, rows, p) for p in range(n_ph)],
+                   arrays_by_name={a.phase: a for a in lib.phases}, quantum=max(quantum, 1.0))
+
+
+def _select(ctx: _Sample):
+    """Greedy selection (each step's gain with its false-identification probability), then the rate
+    control over the set; returns (chosen, their probabilities, the rejected (phase, p) pairs)."""
+    v, u, kappa, settings = ctx.v, ctx.u, ctx.kappa, ctx.settings
+    chosen: list[PhaseMatch] = []
+    chosen_p: list[float] = []
+    eligible = [m for m, ok in zip(ctx.matches, ctx.rows.eligible[:ctx.n_phases]) if ok]
+    while len(chosen) < settings.max_phases:
+        base_ev = np.max([c.ring_evidence for c in chosen], axis=0) if chosen else np.full(ctx.n, -np.inf)
+        best, best_gain = None, 0.0
+        for m in eligible:
+            if any(m is c for c in chosen):
+                continue
+            gain = _set_score(chosen + [m], v, u, kappa) - _set_score(chosen, v, u, kappa)
+            explains_new = not chosen or np.any((m.ring_evidence >= 0) & (base_ev < 0))
+            if explains_new and gain > best_gain:
+                best, best_gain = m, gain
+        if best is None:
+            break
+        chosen.append(best)
+        chosen_p.append(float(ctx.false_probability(best_gain, base_ev)[0]))
+    n_kept = _forward_stop(chosen_p, settings.false_identification_rate)
+    rejected = list(zip(chosen[n_kept:], chosen_p[n_kept:]))
+    return chosen[:n_kept], chosen_p[:n_kept], rejected
+
+
+def _confidences(ctx: _Sample, chosen, chosen_p, unexplained_share):
+    """Confidence, alternatives and separation (σ of the dilation) of each chosen phase: swap it for
+    every other library phase that could enter an answer, or leave it out; then the chance that it
+    is an absent phase's chance match, and the share of the ring area the answer explains."""
+    v, u, kappa, settings, rows = ctx.v, ctx.u, ctx.kappa, ctx.settings, ctx.rows
+    n_ph = ctx.n_phases
+    current = _set_score(chosen, v, u, kappa)
+    all_ev = rows.evidence[:n_ph]
+    all_terms = rows.phase_terms[:n_ph]
+    chosen_ids = {id(c) for c in chosen}
+    swappable = np.array([id(m) not in chosen_ids for m in ctx.matches]) & ~rows.lattice_mismatch[:n_ph]
+    sigma_alpha = settings.dilation_sigma or settings.dilation_window / 2
+    confidences, alternatives, separations = [], [], []
+    for p, p_false in zip(chosen, chosen_p):
+        others = [c for c in chosen if c is not p]
+        s_without = _set_score(others, v, u, kappa)
+        base_ev = np.max([c.ring_evidence for c in others], axis=0) if others else np.full(ctx.n, -np.inf)
+        swap = (v * np.maximum(u, np.maximum(base_ev, all_ev))).sum(axis=1) + all_terms
+        swap += sum(c.phase_terms for c in others) - kappa * (len(others) + 1)
+        swap = np.where(swappable, swap, -np.inf)
+        denom = 1.0 + math.exp(min(50.0, s_without - current)) + float(np.sum(np.exp(np.minimum(50.0, swap - current))))
+        # closed world (other library phases, or none) × not a chance match × the share of the ring
+        # area the answer explains (rings left over may belong to an absent phase whose lattice the
+        # match is only a part of, e.g. bcc(a) rings are among those of fcc(a·√2))
+        confidences.append((1.0 - unexplained_share) / denom / (1.0 + null_bayes_factor(p_false)))
+        close = np.flatnonzero(current - swap < settings.alternative_margin)
+        close = close[np.argsort(-swap[close], kind="stable")]
+        alternatives.append(tuple(ctx.matches[q].phase for q in close))
+        if swappable.any():
+            q_best = ctx.matches[int(np.argmax(swap))]
+            sig = math.sqrt(sigma_alpha**2 + (p.dilation_sigma if math.isfinite(p.dilation_sigma) else 0) ** 2)
+            g_ratio = _lattice_ratio(ctx.arrays_by_name[p.phase], ctx.arrays_by_name[q_best.phase])
+            separations.append(abs(math.log(g_ratio)) / sig if math.isfinite(g_ratio) else math.nan)
+        else:
+            separations.append(math.nan)
+    return confidences, alternatives, separations
+
+
+def _candidates(ctx: _Sample, chosen, confidences) -> list[dict]:
+    """The phases.csv rows: every library phase scoring above the floor (or in the answer), with its
+    own false-identification probability as if it were the first phase."""
+    rows, settings = ctx.rows, ctx.settings
+    single_p = ctx.false_probability(rows.score[:ctx.n_phases] - ctx.kappa, np.full(ctx.n, -np.inf))
+    index_of = {id(m): q for q, m in enumerate(ctx.matches)}
+    out = []
+    for m in sorted(ctx.matches, key=lambda m: (-m.score, m.phase)):
+        in_answer = any(m is c for c in chosen)
+        if m.score <= settings.candidate_floor and not in_answer:
+            continue
+        q = index_of[id(m)]
+        out.append({
+            "phase": m.phase, "score": m.score, "dilation": m.dilation, "dilation_sigma": m.dilation_sigma,
+            "n_matched": m.n_matched, "missing_strong_rings": ";".join(m.missing_strong),
+            "n_missing_strong": len(m.missing_strong), "explained_intensity_share": m.explained_share,
+            "in_answer": in_answer,
+            "confidence": next((conf for c, conf in zip(chosen, confidences) if c is m), math.nan),
+            "false_identification_probability": float(single_p[q]) if rows.eligible[q] else math.nan,
+            "free_dilation": float(rows.free_dilation[q]), "free_dilation_sigma": float(rows.free_dilation_sigma[q]),
+            "lattice_mismatch": bool(rows.lattice_mismatch[q]),
+            "n_missing_major": int(rows.n_missing_top[q]),
+        })
+    return out
+
+
+def _lattice_mismatches(ctx: _Sample, chosen) -> list[dict]:
+    """Phases that would have matched but for a dilation outside the window: those that matter, when
+    nothing is reported or when they score above the answer, best first."""
+    rows, settings, n_ph = ctx.rows, ctx.settings, ctx.n_phases
+    candidates = np.flatnonzero(rows.lattice_mismatch[:n_ph] & (rows.score[:n_ph] >= settings.accept_score)
+                                & (rows.n_matched[:n_ph] >= settings.min_matched_rings))
+    best_reported = max((c.score for c in chosen), default=-math.inf)
+    out = [{"phase": ctx.matches[q].phase, "dilation": float(rows.free_dilation[q]),
+            "dilation_sigma": float(rows.free_dilation_sigma[q]), "score": float(rows.score[q])}
+           for q in candidates if rows.score[q] > best_reported]
+    return sorted(out, key=lambda r: (-r["score"], r["phase"]))
 
 
 def _own_lattice(match: PhaseMatch, ph: _PhaseArrays, lattice: dict) -> bool:
