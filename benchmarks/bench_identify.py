@@ -4,7 +4,7 @@
 
 The large library is the shipped reference_phases/ expanded with random lattice dilations
 (0.85-1.15, seeded), so it has realistic ring lists and many near-coincidences. Target
-(issue 5): under 100 ms per sample on one core.
+(docs/design.md): under 100 ms per sample on one core.
 """
 
 from __future__ import annotations

@@ -14,7 +14,7 @@ grid   : ≥ 30 simulated calibrations (ε 0–4 %, centre offsets up to 15 % of
          width, with/without beam stop, normal/low dose; Au rings from pyFAI's
          calibrant table, nominal K 10 % off), each followed by a sample (Al rings,
          pyFAI table) at a moved centre measured with that calibration. Prints the
-         table of errors against the targets of issue 3.
+         table of errors against the targets in docs/design.md.
 
 All patterns are made by ringid's own simulator (synthetic data).
 """

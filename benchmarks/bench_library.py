@@ -4,7 +4,7 @@
 
 Prints the in-process computation time per phase of ``reference_phases/`` (CIF reading,
 symmetry expansion, structure factors, ring merging, file writing; interpreter start
-excluded), the mean per phase, and Fe3O4 alone at d_min = 0.5 Å. Targets (issue 2): mean
+excluded), the mean per phase, and Fe3O4 alone at d_min = 0.5 Å. Targets (docs/design.md): mean
 < 0.2 s per phase, Fe3O4 < 0.5 s, on one core.
 """
 

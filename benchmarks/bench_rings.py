@@ -1,6 +1,6 @@
 """Benchmark of the ring stage: background + detection + fitting of one 1D profile.
 
-Targets (issue 4): < 50 ms typical, < 200 ms worst case with 30 rings. Prints the median and
+Targets (docs/design.md): < 50 ms typical, < 200 ms worst case with 30 rings. Prints the median and
 the maximum over repeated runs of :func:`ringid.profile.rings.fit_rings` and of the whole
 :func:`ringid.profile.rings.analyze_profile` on synthetic profiles (Poisson noise on a power-law +
 exponential tail; pseudo-Voigt rings; a Debye-equation halo from :mod:`ringid.synthetic.amorphous`).

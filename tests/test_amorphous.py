@@ -18,7 +18,8 @@ def test_scattering_factor_matches_gemmi_calculator():
 
 
 def test_scattering_factor_at_zero_is_sum_of_published_carbon_coefficients():
-    # source: Peng et al. 1996 / ITC C Table 4.3.2.2 carbon a_i = .0893 .2563 .757 1.0487 .3575 (METHODS.md §2 [C])
+    # source: Peng, Ren, Dudarev & Whelan, Acta Cryst. A52, 257 (1996), as ITC Vol. C Table 4.3.2.2:
+    # carbon a_i = .0893 .2563 .757 1.0487 .3575
     f0 = amorphous.electron_scattering_factor_angstrom("C", [0.0])[0]
     assert f0 == pytest.approx(0.0893 + 0.2563 + 0.757 + 1.0487 + 0.3575, abs=2e-4)
 
@@ -57,14 +58,14 @@ def test_random_dense_packing_has_no_overlaps_and_its_density():
 
 
 def test_first_halo_position_follows_contact_distance():
-    """Dense-packing halo: Q1·r1 ≈ 7.7 (Ehrenfest relation, r1 ≈ 1.23·d_halo; METHODS.md §7 [M])."""
+    """Dense-packing halo: Q1·r1 ≈ 7.7 (Ehrenfest relation, r1 ≈ 1.23·d_halo, from memory)."""
     g = np.linspace(1.0, 15.0, 700)
     for diameter in (2.35, 2.8):
         intensity = amorphous.amorphous_halo_profile(g, "Si", diameter_angstrom=diameter, n_atoms=1200)
         s_of_g = intensity / amorphous.electron_scattering_factor_angstrom("Si", g) ** 2
         g1 = g[np.argmax(s_of_g)]
         q1_times_r1 = 2 * np.pi * g1 / 10.0 * diameter
-        # source: Ehrenfest (1915) relation, from memory (METHODS.md §7), a 5 % band
+        # source: Ehrenfest (1915) relation, from memory; a 5 % band
         assert q1_times_r1 == pytest.approx(7.725, rel=0.05)
         # the structure factor oscillates about 1 at large g (I/N → f², the self term)
         assert np.mean(s_of_g[g > 10.0]) == pytest.approx(1.0, abs=0.1)
@@ -73,7 +74,8 @@ def test_first_halo_position_follows_contact_distance():
 
 
 def test_halo_width_is_amorphous_like():
-    """First halo FWHM of S(g) of order 1 nm⁻¹ in g (METHODS.md §7: Δ(1/d) ≈ 0.5–1 nm⁻¹ [M])."""
+    """First halo FWHM of S(g) of order 1 nm⁻¹ in g (common practice, from memory: first halos have
+    Δ(1/d) ≈ 0.5–1 nm⁻¹)."""
     g = np.linspace(2.0, 8.0, 601)
     s_of_g = (
         amorphous.amorphous_halo_profile(g, "Si", n_atoms=1200)

@@ -7,7 +7,8 @@ from ringid.profile.background import estimate_background, lls, lls_inverse, sni
 from ringid.profile.rings import pseudo_voigt
 
 G = np.arange(1.0, 14.0, 0.01)  # 1/nm
-TAIL = 2000.0 * G**-2.5 + 5.0 * np.exp(-G / 6.0)  # power-law + exponential tail (METHODS.md §9)
+# power-law + exponential tail (the usual shapes of a SAED background, common practice)
+TAIL = 2000.0 * G**-2.5 + 5.0 * np.exp(-G / 6.0)
 PIXELS = 200.0 * G  # pixels per bin of an azimuthal mean, ∝ ring circumference
 
 

@@ -32,7 +32,9 @@ SHAPE = (1024, 1024)
 def au():
     # source: pyFAI calibrant table "Au" (d in Å)
     d, _, hkl = pyfai_calibrant_rings("Au")
-    # source: METHODS.md §3 Au kinematic areas 111..222 [K]; weaker outer rings at 5 (demo values)
+    # source: Au kinematic mean-profile areas 111..222 (Σ|F|²d², B = 0.6 Å²), computed with gemmi's
+    # StructureFactorCalculatorE (ITC Vol. C Table 4.3.2.2 factors);
+    # weaker outer rings at 5 (demo values)
     inten = np.array([100, 45.5, 23.5, 23.4, 6.4] + [5] * (d.size - 5))
     return d, inten, hkl
 
@@ -55,7 +57,8 @@ def test_camera_constant_from_au_standard(au, nominal_factor):
     cal = calibrate_pattern(img, masks.mask, d, voltage_kv=200.0, standard_hkl=hkl, standard="Au",
                             nominal_camera_constant_A_px=nominal, center_guess=masks.rough_center_xy)
     g = cal.geometry
-    # source: issue 3 accuracy targets (K 0.05 %, centre 0.1 px median, eps 0.05 % absolute, angle 2 deg)
+    # source: the project's accuracy targets (docs/design.md, Targets) (K 0.05 %, centre 0.1 px median, eps 0.05 %
+    # absolute, angle 2 deg)
     assert g.camera_constant_A_px == pytest.approx(k_true, rel=5e-4)
     assert math.hypot(g.center_x_px - 560.3, g.center_y_px - 480.9) < 0.1
     assert g.ellipticity == pytest.approx(0.025, abs=5e-4)
@@ -143,7 +146,7 @@ def test_calibrated_sample_d_spacings(au):
     g_true = 10.0 / d_al
     _, g_fit, _ = fit_ring_widths(prof, g_true * 1.001, np.full(d_al.size, 0.06))
     rel = np.abs(g_fit / g_true - 1)
-    # source: issue 3 target, calibrated d within 0.1 % (median)
+    # source: the project's target (docs/design.md, Targets), calibrated d within 0.1 % (median)
     assert np.nanmedian(rel) < 1e-3
     assert np.isfinite(g_fit).sum() >= 5
 
@@ -176,8 +179,9 @@ def test_cli_simulate_then_calibrate(tmp_path, capsys):
 
 
 @pytest.mark.slow
-def test_accuracy_grid_meets_issue_targets():
-    """The 32-pattern accuracy grid of benchmarks/bench_image.py at 1024², against the issue 3 targets."""
+def test_accuracy_grid_meets_the_targets():
+    """The 32-pattern accuracy grid of benchmarks/bench_image.py at 1024², against the project's
+    targets (docs/design.md)."""
     import importlib.util
     from pathlib import Path
 
@@ -188,7 +192,7 @@ def test_accuracy_grid_meets_issue_targets():
     rows = bench.bench_grid(1024, quiet=True)
     assert len(rows) >= 30
     centre = np.array([r["center_err_px"] for r in rows])
-    # source: issue 3 accuracy targets
+    # source: the project's accuracy targets (docs/design.md, Targets)
     assert np.median(centre) <= 0.1 and centre.max() <= 0.3
     assert max(r["eps_err"] for r in rows) <= 5e-4
     assert max(r["angle_err_deg"] for r in rows if r["eps"] >= 0.005) <= 2.0
@@ -216,7 +220,7 @@ def test_cli_with_library_standard_and_search(tmp_path):
     assert main(["calibrate", str(tif), "--standard", "Au", "--library", str(lib), "--voltage-kv", "200",
                  "-o", str(out)]) == 0
     rec = json.loads(out.read_text())
-    # source: issue 3 target, K within 0.05 %
+    # source: the project's target (docs/design.md, Targets), K within 0.05 %
     assert rec["camera_constant_A_px"] == pytest.approx(420.0, rel=5e-4)
     assert rec["rings"][0]["hkl"].replace(" ", "") in ("111", "(111)")
 

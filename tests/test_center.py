@@ -21,7 +21,9 @@ def au_rings():
 
     # source: pyFAI calibrant table "Au" (d-spacings in Å)
     d = np.array(pyFAI.calibrant.get_calibrant("Au").dspacing[:10])
-    # source: METHODS.md §3 Au kinematic areas 111..222 [K]; weaker outer rings set to 5 (demo values)
+    # source: Au kinematic mean-profile areas 111..222 (Σ|F|²d², B = 0.6 Å²), computed with gemmi's
+    # StructureFactorCalculatorE (ITC Vol. C Table 4.3.2.2 factors);
+    # weaker outer rings set to 5 (demo values)
     intensity = np.array([100, 45.5, 23.5, 23.4, 6.4, 5, 5, 5, 5, 5])
     return d, intensity
 
@@ -57,7 +59,8 @@ def test_coarse_center_off_centre_by_15_percent(au_rings):
 def test_refined_center_and_ellipse_meet_the_accuracy_targets(au_rings, kw):
     truth, fit = _run(au_rings, **kw)
     g = fit.geometry
-    # source: issue 3 accuracy targets (centre 0.3 px worst case, eps 0.05 % absolute, angle 2 deg)
+    # source: the project's accuracy targets (docs/design.md, Targets) (centre 0.3 px worst case, eps 0.05 %
+    # absolute, angle 2 deg)
     assert math.hypot(g.center_x_px - truth.center_x_px, g.center_y_px - truth.center_y_px) < 0.3
     assert abs(g.ellipticity - truth.ellipticity) < 5e-4
     if truth.ellipticity >= 0.005:

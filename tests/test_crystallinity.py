@@ -17,7 +17,8 @@ G = np.arange(1.0, 14.0, 0.01)  # 1/nm
 TAIL = 500.0 * G**-2.5 + 0.5 * np.exp(-G / 5.0)
 INSTRUMENT = InstrumentProfile(0.03, 0.0, 0.5)
 # Au ring positions (1/d, 1/nm) and kinematic mean-profile areas 111/200/220/311/222
-# source: METHODS.md §3 and §10 [K] (a = 4.0782 Å, c4322, B = 0.6 Å²)
+# source: Au kinematic mean-profile areas (Σ|F|²d², B = 0.6 Å²), computed with gemmi's StructureFactorCalculatorE (ITC
+# Vol. C Table 4.3.2.2 factors), a = 4.0782 Å
 AU_RINGS = [(4.247, 100.0), (4.904, 45.5), (6.935, 23.5), (8.132, 23.4), (8.494, 6.4)]
 
 
@@ -90,7 +91,7 @@ def test_blank_and_unusable():
 
 def test_thresholds_have_their_stated_meaning():
     t = CrystallinityThresholds()
-    # source: K_w = 1.1067 (sphere, FWHM; METHODS.md §5 [K] after Langford & Wilson 1978):
+    # source: K_w = 1.1067 (sphere, FWHM; Langford & Wilson, J. Appl. Cryst. 11, 102, 1978):
     # the halo threshold is the FWHM of 1.5 nm spheres
     assert t.halo_min_fwhm_per_nm == pytest.approx(1.1067 / 1.5, abs=0.005)
     ring = Ring(4.0, 0.001, 0.05, area=1.0)

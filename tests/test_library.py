@@ -134,7 +134,8 @@ def test_diamond_absences_and_double_diffraction():
     even = (np.mod(hkl, 2) == 0).all(axis=1)
     assert np.all(hkl[even].sum(axis=1) % 4 == 0)
     labels = dict(zip(rings.hkl, rings.double_diffraction))
-    # 200 = 111 + 1-1-1 and 222 = 111 + 111 light up by double diffraction (METHODS.md §4)
+    # 200 = 111 + 1-1-1 and 222 = 111 + 111 light up by double diffraction (two allowed reflections that sum to a
+    # forbidden one; common practice, from memory)
     assert labels["2 0 0"] and labels["2 2 2"]
     assert not labels["1 1 1"] and not labels["2 2 0"]
     i = rings.hkl.index("2 2 2")
@@ -143,7 +144,8 @@ def test_diamond_absences_and_double_diffraction():
 
 def test_hcp_0001_forbidden_0002_allowed():
     # source: International Tables A, P6_3/mmc with atoms at 2c: 000l only l = 2n;
-    # 0001 = (0 1 -1 1) + (0 -1 1 0) by double diffraction (METHODS.md §4)
+    # 0001 = (0 1 -1 1) + (0 -1 1 0) by double diffraction (two allowed reflections that sum to a forbidden one;
+    # common practice, from memory)
     rings, _, _ = _rings("Ti")
     by_label = dict(zip(rings.hkl, zip(rings.intensity, rings.double_diffraction)))
     assert by_label["0 0 0 1"] == (0.0, True)
@@ -161,7 +163,8 @@ def test_rutile_h0l_with_h_plus_l_odd_absent():
 
 
 def test_au_intensities_match_vainshtein_areas():
-    # source: METHODS.md §3 (computed): Au, B = 0.6 Å², c4322, azimuthal-mean areas
+    # source: Au kinematic mean-profile areas (Σ|F|²d², B = 0.6 Å²), computed with gemmi's
+    # StructureFactorCalculatorE (ITC Vol. C Table 4.3.2.2 factors):
     # 111/200/220/311/222 = 100/45.5/23.5/23.4/6.4
     crystal = read_crystal(REFERENCE_PHASES / "Au.cif")
     crystal = dataclasses.replace(crystal, u_iso_angstrom2=np.full(len(crystal.fract), 0.6 / (8 * np.pi**2)))

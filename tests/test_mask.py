@@ -10,7 +10,8 @@ from ringid.synthetic.simulate import simulate_pattern
 
 # source: pyFAI calibrant table "Au": d(111), d(200), d(220), d(311), d(222) in Å
 AU_D = [2.35454987, 2.0391, 1.44186144, 1.22962357, 1.17727493]
-# source: METHODS.md §3, kinematic mean-profile areas of Au rings [K, computed with gemmi c4322]
+# source: Au kinematic mean-profile areas 111..222 (Σ|F|²d², B = 0.6 Å²), computed with gemmi's
+# StructureFactorCalculatorE (ITC Vol. C Table 4.3.2.2 factors)
 AU_I = [100, 45.5, 23.5, 23.4, 6.4]
 
 

@@ -113,7 +113,8 @@ def test_scherrer_size_back_within_10_percent(diameter_nm):
     instrument = InstrumentProfile(0.03, 0.0, 0.5)
     profile = _size_profile(diameter_nm, instrument, np.random.default_rng(3), _lorentzian_size)
     size = analyze_profile(profile, instrument=instrument).size
-    # target of issue 4: within 10 %; the shape constant K = 4/3 (sphere diameter on the integral
+    # the project's target (docs/design.md, Targets): within 10 %; the shape constant K = 4/3 (sphere diameter on
+    # the integral
     # breadth) is from Langford & Wilson 1978, J. Appl. Cryst. 11, 102
     assert size.size_nm == pytest.approx(diameter_nm, rel=0.10)
 
@@ -164,7 +165,7 @@ def test_sample_size_is_weighted_in_breadth_space():
 
 def test_ring_more_gaussian_than_the_instrument_at_its_width_gives_a_lower_limit():
     """A Gaussian ring of the instrument's FWHM has a smaller integral breadth than the pV(η=0.5)
-    instrument (Gaussian β = 1.0645 Γ < pV β; METHODS.md §5): no size, only a lower limit."""
+    instrument (Gaussian β = √(π/(4 ln 2))·Γ = 1.0645 Γ < pV β, computed): no size, only a lower limit."""
     instrument = InstrumentProfile(0.05, 0.0, 0.5)
     s = ring_size(_ring(0.05, eta=0.0, rel_sigma=0.002), instrument)
     assert s.is_lower_limit and not math.isfinite(s.size_nm)

@@ -26,7 +26,7 @@ def test_constants_are_codata():
 
 @pytest.mark.parametrize(
     "kv, pm",
-    # source: electron-optics handbook table quoted in docs/design.md / METHODS.md §1
+    # source: electron-optics handbook table
     # (a microscope maker's published glossary: 3.7014, 2.5079, 1.9687 pm), given to 5 digits
     [(100, 3.7014), (200, 2.5079), (300, 1.9687), (80, 4.1757), (120, 3.3492)],
 )
@@ -35,7 +35,7 @@ def test_electron_wavelength_handbook(kv, pm):
 
 
 def test_gamma_200kv():
-    # source: METHODS.md §1 table, γ = 1 + eV/m0c² with m0c² = 510.999 keV (computed)
+    # source: γ = 1 + eV/m0c² with m0c² = 510.99895 keV (CODATA 2018; computed)
     assert relativistic_gamma(200) == pytest.approx(1 + 200 / 510.99895, rel=1e-9)
 
 
@@ -46,11 +46,11 @@ def test_wavelength_rejects_nonpositive_voltage():
 
 def test_g_d_round_trip():
     assert g_to_d(d_to_g(2.3546)) == pytest.approx(2.3546)
-    # source: METHODS.md §10, Au 111 d = 2.3546 Å is 1/d = 4.247 nm⁻¹
+    # source: Au 111, d = 4.0782/√3 = 2.3546 Å, is 1/d = 4.247 nm⁻¹ (computed)
     assert d_to_g(2.3546) == pytest.approx(4.247, abs=5e-4)
 
 
 def test_nominal_camera_constant():
-    # λL at 200 kV is 25.08 Å·mm per metre of camera length (METHODS.md §10, computed):
+    # λL at 200 kV is 25.08 Å·mm per metre of camera length (computed from λ = 2.5079 pm):
     # L = 1000 mm, p = 10 µm -> K = 0.025079 Å × 1 m / 10 µm = 2507.9 Å·px
     assert nominal_camera_constant_a_px(1000, 10, 200) == pytest.approx(2507.9, rel=1e-4)
