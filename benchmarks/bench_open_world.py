@@ -15,6 +15,9 @@ bench_identify.py), at both dilation windows (±0.5 % standard film, ±3 % nomin
 - known + unknown: a library phase beside an unknown crystal: known phase reported and
   ``unidentified_phase`` flagged;
 - reliability: reported phases binned by confidence, the share right per bin.
+
+With --rate-only: the lattice-free lists alone (share with a phase, distribution of the smallest
+false-identification probability) and how often one cell indexes such a list, by ring count.
 """
 
 from __future__ import annotations
@@ -146,6 +149,23 @@ def rate_figures(library, n, seed):
         print(f"{wname:<9} reported {hits}/{n}; {shares}; {1000 * (time.perf_counter() - t0) / n:.0f} ms per list")
 
 
+def indexing_figures(n, seed):
+    """How often one cell (single_lattice) indexes a lattice-free list, by number of rings."""
+    from ringid.identify.score import single_lattice
+    from ringid.synthetic.ring_lists import random_ring_list
+
+    rng = np.random.default_rng(seed)
+    print(f"lattice-free lists indexed by one cell ({n} lists each):")
+    for n_rings in (6, 7, 8, 10, 12, 14, 20, 40):
+        hits = {"cubic": 0, "hexagonal": 0, "tetragonal": 0}
+        for _ in range(n):
+            obs = random_ring_list(rng, n_rings)
+            found = single_lattice(obs.g_per_nm, np.hypot(obs.g_sigma_per_nm, 1e-3 * obs.g_per_nm))
+            if found:
+                hits[found["system"]] += 1
+        print(f"  {n_rings:>2} rings: " + ", ".join(f"{k} {v}" for k, v in hits.items()))
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--n", type=int, default=100, help="cases of each kind and window")
@@ -168,6 +188,8 @@ def main() -> None:
         library = expanded_library(library, args.phases)
     if args.rate_only:
         rate_figures(library, args.n, args.seed)
+        if len(library) <= 100:
+            indexing_figures(100, args.seed)
         return
     cases = make_cases(library, args.n, args.seed)
     results, per_case = run(library, cases, lambda w: IdentifySettings(dilation_window=WINDOWS[w]))

@@ -268,8 +268,9 @@ def test_one_lattice_indexes_outside_line_lists(calibrant, system, n_lines):
 
 
 def test_lattice_free_lists_are_rarely_indexed():
-    """Measured while choosing the ring minimums: 1 of 100 lists of 6-7 rings gets a cubic cell, none of
-    12 rings or more a uniaxial one (fewer rings than 12 are not tried for two-parameter cells)."""
+    """About 1 % of lattice-free lists of 6-7 rings got a cubic cell while the ring minimums were chosen
+    (bench_open_world.py --rate-only: 0 of 100 for every ring count); fewer than 12 rings are not tried
+    for two-parameter cells."""
     from ringid.identify.score import single_lattice
 
     rng = np.random.default_rng(21)

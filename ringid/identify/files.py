@@ -49,7 +49,6 @@ PHASES_COLUMNS = [
 ASSIGNMENT_COLUMNS = ["phase", "hkl", "double_diffraction", "d_calc_angstrom"]
 
 
-
 def _fmt(x, digits=6) -> str:
     if isinstance(x, (bool, np.bool_)):
         return "true" if x else "false"

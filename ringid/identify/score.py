@@ -30,7 +30,7 @@ scores
 
 with v_i = √(A_i/⟨A⟩) (strong rings weigh more, so the explained share of the observed intensity
 counts), u = −ln 2 the cost of an unexplained ring, σ_α the dilation prior (half the window by
-default), ŝ_p the median observed/predicted intensity ratio of the phase's matched rings, and
+default), ŝ_p the matched rings' summed observed area over their summed predicted intensity, and
 P_det,j = P_max·(1 − exp(−ŝ_p I_j / A_lim)) the chance that ring j would have been detected
 (A_lim the detection-limit area; P_max = 0.9 because dynamical scattering and texture can hide
 any single ring). "Visible" means inside the observed g range. w_I = 0.5 and σ_I = ln 3 make
@@ -859,7 +859,7 @@ MIN_RINGS_CUBIC = 6  # fewer rings are indexed by some cubic cell too easily
 #: the fewest rings for two free parameters, and de Wolff's figure of merit M = Q_N / (2 ε̄ N_calc)
 #: (J. Appl. Cryst. 1, 108, 1968; M above 10 is the usual mark of a plausible indexing, common practice)
 MAX_PLANAR_INDEX, MAX_L = 48, 8
-MIN_RINGS_UNIAXIAL = 12  # measured: 12 of 100 lattice-free lists of 8 rings are indexed, 2 of 10 rings, 0 of 12
+MIN_RINGS_UNIAXIAL = 12  # seen while choosing it: 12 of 100 lattice-free lists of 8 rings indexed, 2 of 10, 0 of 12
 MIN_DE_WOLFF_M = 10.0
 OWN_LATTICE_TOLERANCE = 0.003
 _HEX_M = np.array(sorted({h * h + h * k + k * k for h in range(8) for k in range(8)}))
@@ -890,29 +890,34 @@ def single_uniaxial_lattice(g_per_nm: np.ndarray, tau_per_nm: np.ndarray) -> dic
     order = np.argsort(q)
     ls = np.arange(MAX_L + 1) ** 2
     best = None
+    threshold = q.max() * (1 + 1e-9)
     for system, mv, factor in (("hexagonal", _HEX_M, 4.0 / 3.0), ("tetragonal", _TET_M, 1.0)):
         mv = mv[mv <= MAX_PLANAR_INDEX]
+        l_trial, m_trial = (a.ravel() for a in np.meshgrid([1, 2, 3], mv[:6], indexing="ij"))
         for i in order[:3]:
             for m_i in mv[1:7]:
                 a_term = q[i] / (factor * m_i)  # factor·a_term·m is the (hk) part of Q
+                hk = factor * a_term * mv[:, None]
                 for j in order[:6]:
                     if j == i:
                         continue
-                    for l_j in (1, 2, 3):
-                        for m_j in mv[:6]:
-                            c_term = (q[j] - factor * m_j * a_term) / l_j**2
-                            if c_term <= 0:
-                                continue
-                            calc = np.unique((factor * a_term * mv[:, None] + c_term * ls[None, :]).ravel())[1:]
-                            k = np.clip(np.searchsorted(calc, q), 1, len(calc) - 1)
-                            d = np.minimum(np.abs(calc[k] - q), np.abs(calc[k - 1] - q))
-                            if np.any(d > 3 * sq):
-                                continue
-                            n_calc = int(np.sum(calc <= q.max() * (1 + 1e-9)))
-                            m_fom = float(q.max() / (2 * max(float(np.mean(d)), 1e-12) * n_calc))
-                            if m_fom >= MIN_DE_WOLFF_M and (best is None or m_fom > best["de_wolff_m"]):
-                                best = {"system": system, "a_angstrom": 10.0 / math.sqrt(a_term),
-                                        "c_angstrom": 10.0 / math.sqrt(c_term), "de_wolff_m": m_fom}
+                    c_terms = (q[j] - factor * m_trial * a_term) / l_trial**2  # every (l, hk) trial for ring j
+                    c_terms = c_terms[c_terms > 0]
+                    if c_terms.size == 0:
+                        continue
+                    calc = (hk[None, :, :] + c_terms[:, None, None] * ls[None, None, :]).reshape(len(c_terms), -1)
+                    calc = np.sort(np.where(calc > 0, calc, np.inf), axis=1)  # Q of every trial cell's rings
+                    d = np.min(np.abs(calc[:, :, None] - q[None, None, :]), axis=1)  # nearest calculated ring
+                    ok = np.all(d <= 3 * sq, axis=1)
+                    if not ok.any():
+                        continue
+                    inside = calc <= threshold
+                    n_calc = inside[:, :1].sum(axis=1) + (inside[:, 1:] & (np.diff(calc, axis=1) != 0)).sum(axis=1)
+                    for t in np.flatnonzero(ok):
+                        m_fom = float(q.max() / (2 * max(float(np.mean(d[t])), 1e-12) * n_calc[t]))
+                        if m_fom >= MIN_DE_WOLFF_M and (best is None or m_fom > best["de_wolff_m"]):
+                            best = {"system": system, "a_angstrom": 10.0 / math.sqrt(a_term),
+                                    "c_angstrom": 10.0 / math.sqrt(c_terms[t]), "de_wolff_m": m_fom}
     return best
 
 
