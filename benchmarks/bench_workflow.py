@@ -126,14 +126,15 @@ def main() -> None:
     from ringid.identify.score import index_library
     from ringid.library.store import load_library
     from ringid.library.store import build_library
-    from ringid.jobs.measure import identify_sample, make_calibration, measure_sample, read_calibration_record
+    from ringid.core.records import read_calibration_record
+    from ringid.jobs.measure import identify_sample, make_calibration, measure_sample
     from ringid.jobs.sheets import read_calibrations
 
     t0 = time.perf_counter()
     build_library(ROOT / "reference_phases", work / "lib")
     rec("library build, 29 phases (in-process)", time.perf_counter() - t0, "s")
     make_calibration(read_calibrations(work / "calibrations.csv")["cal"], work / "cal.json", library_dir=work / "lib")
-    geometry, _ = read_calibration_record(work / "cal.json")
+    geometry = read_calibration_record(work / "cal.json").geometry
     first = sorted((work / "images").glob("p0000_*.tif"))[0]
     t0 = time.perf_counter()
     image = tifffile.imread(first)
@@ -149,7 +150,7 @@ def main() -> None:
     for k, img in enumerate(sorted((work / "images").glob("p00*.tif"))[:13]):
         out = work / "inproc" / img.stem
         r = measure_sample(img, work / "cal.json", out, sample=img.stem)
-        for key, val in r.get("timings_s", {}).items():
+        for key, val in r.timings_s.items():
             stage_times.setdefault(key, []).append(val)
         t0 = time.perf_counter()
         identify_sample(out, library)

@@ -59,7 +59,7 @@ def calibration(tmp_path_factory) -> Path:
 
     path = tmp_path_factory.mktemp("cal") / "known.json"
     rec = make_calibration(CalibrationRow("known", "constant", 200.0, camera_constant_A_px=K_A_PX), path)
-    assert rec["status"] == "ok"
+    assert rec.status == "ok"
     return path
 
 

@@ -2,7 +2,7 @@
 
 Outside checks: the standards' ring positions come from pyFAI's calibrant
 d-spacing tables (NIST/literature lattice parameters), not from ringid's own
-library, and the wavelength from the handbook values in docs/design.md.
+library, and the wavelength from the relativistic de Broglie formula with CODATA constants.
 """
 
 import json
@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 
-from ringid.calibration.record import read_calibration_record
+from ringid.core.records import CalibrationRecord, read_calibration_record
 from ringid.calibration.calibrate import (
     assign_rings,
     calibrate_pattern,
@@ -47,7 +47,9 @@ def _masked(sim):
 @pytest.mark.parametrize("nominal_factor", [1.10, 0.90, None])
 def test_camera_constant_from_au_standard(au, nominal_factor):
     d, inten, hkl = au
-    # source: docs/design.md handbook wavelength 200 kV = 2.5079 pm; L = 400 mm, p = 15 um (typical SAED, METHODS §10)
+    # wavelength 200 kV = 2.5079 pm: relativistic de Broglie formula, CODATA constants (Williams & Carter,
+    # Transmission Electron Microscopy, 2nd ed., Table 1.1: 0.00251 nm; from memory); L = 400 mm, p = 15 um are
+    # typical SAED settings (common practice)
     k_true = nominal_camera_constant_a_px(400.0, 30.0, 200.0)
     assert k_true == pytest.approx(0.025079 * 0.4 / 30e-6, rel=1e-4)
     sim = simulate_pattern(d, inten, shape=SHAPE, camera_constant_A_px=k_true, ellipticity=0.025,
@@ -89,18 +91,18 @@ def test_silicon_standard_and_record_round_trip(tmp_path):
                 "voltage_kv", "rings", "instrument_fwhm", "camera_constant_sigma_A_px"):
         assert key in rec
     assert {"g_obs_per_nm", "g_calc_per_nm", "hkl"} <= set(rec["rings"][0])
-    # source: docs/design.md handbook wavelength 300 kV = 1.9687 pm; L = K p / lambda
+    # wavelength 300 kV = 1.9687 pm (relativistic de Broglie formula, CODATA constants); L = K p / lambda
     assert rec["camera_length_mm"] == pytest.approx(cal.geometry.camera_constant_A_px * 14e-3 / 0.019687, rel=1e-4)
-    geom, _ = read_calibration_record(out)
+    record = read_calibration_record(out)
+    geom = record.geometry
     assert geom.camera_constant_A_px == cal.geometry.camera_constant_A_px and geom.voltage_kv == 300.0
+    assert record == cal.record(pixel_size_um=14.0, nominal_camera_constant_A_px=430.0)  # written and read back
     # the instrumental ring profile the sample stage reads back: width line and shape
-    from ringid.jobs.measure import instrument_from_record
-
-    inst = instrument_from_record(rec)
+    inst = record.instrument
     assert inst.fwhm_per_nm(5.0) == pytest.approx(cal.instrument_fwhm_per_nm(5.0))
     assert inst.eta == pytest.approx(cal.instrument_eta)
     del rec["instrument_fwhm"]["eta"]  # a record written before the shape was measured
-    assert instrument_from_record(rec).eta == 0.5
+    assert CalibrationRecord.from_json(rec).instrument.eta == 0.5
 
 
 def test_too_few_rings_is_refused(au):
@@ -155,7 +157,7 @@ def test_cli_simulate_then_calibrate(tmp_path, capsys):
     from ringid.cli import main
 
     tif = tmp_path / "au.tif"
-    # source: docs/design.md handbook wavelength at 200 kV; L = 300 mm, p = 30 um
+    # wavelength at 200 kV from the relativistic de Broglie formula (CODATA constants); L = 300 mm, p = 30 um
     assert main(["simulate", "--pyfai-calibrant", "Au", "--camera-length-mm", "300", "--pixel-size-um", "30",
                  "--shape", "768", "768", "--ellipticity", "0.015", "--ellipse-angle-deg", "60", "--beam-stop",
                  "--seed", "3", "-o", str(tif)]) == 0
@@ -240,7 +242,7 @@ def test_pattern_drawn_by_pyfai_geometry():
     from ringid.core.units import electron_wavelength_angstrom
 
     lam_m = electron_wavelength_angstrom(200.0) * 1e-10
-    # source: docs/design.md handbook wavelength 200 kV = 2.5079 pm
+    # wavelength 200 kV = 2.5079 pm (relativistic de Broglie formula, CODATA constants)
     assert lam_m == pytest.approx(2.5079e-12, rel=5e-5)
     pixel_m, dist_m, cx, cy = 30e-6, 0.25, 540.3, 490.8
     ai = AzimuthalIntegrator(dist=dist_m, poni1=(cy + 0.5) * pixel_m, poni2=(cx + 0.5) * pixel_m,
@@ -282,5 +284,6 @@ def test_a_known_constant_record_reads_without_a_centre(tmp_path):
     path = tmp_path / "cal.json"
     path.write_text(json.dumps({"status": "ok", "camera_constant_A_px": 1003.2, "voltage_kv": 200,
                                 "center_x_px": None, "center_y_px": None}), encoding="utf-8")
-    geom, rec = read_calibration_record(path)
-    assert geom.camera_constant_A_px == 1003.2 and math.isnan(geom.center_x_px) and rec["voltage_kv"] == 200
+    rec = read_calibration_record(path)
+    geom = rec.geometry
+    assert geom.camera_constant_A_px == 1003.2 and math.isnan(geom.center_x_px) and rec.voltage_kv == 200

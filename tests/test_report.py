@@ -3,6 +3,8 @@
 import csv
 import json
 
+from ringid.core.model import Geometry
+from ringid.core.records import SampleRecord, write_sample_record
 from ringid.report.summary import SUMMARY_COLUMNS
 from ringid.report.html import write_report
 
@@ -11,29 +13,18 @@ def make_results(tmp_path):
     res = tmp_path / "results"
     good = res / "samples" / "s1"
     good.mkdir(parents=True)
-    (good / "sample.json").write_text(
-        json.dumps(
-            {
-                "status": "ok",
-                "crystallinity": "crystalline",
-                "n_rings": 6,
-                "calibration": "c1",
-                "note": '<script>alert("note")</script>',
-                "geometry": {"center_x_px": 10.25, "center_y_px": 11.5, "ellipticity": 0.012},
-                "crystallite_size_nm": 12.34,
-                "flags": ["textured"],
-            }
-        )
-    )
+    write_sample_record(good / "sample.json", SampleRecord(
+        "s1", crystallinity="crystalline", n_rings=6, calibration="c1", note='<script>alert("note")</script>',
+        geometry=Geometry(10.25, 11.5, 0.012), g_range_per_nm=(1.0, 40.0), crystallite_size_nm=12.34,
+        flags=("textured",)))
     (good / "identification.json").write_text(json.dumps({
         "phases": ["Au"], "confidence": [0.61], "alternatives": [["Ag"]], "unexplained_rings": 1,
         "fractions_rough": [1.0], "flags": ["ambiguous_isostructural"], "unexplained": [{"d_angstrom": 3.1}]}))
     (good / "rings.csv").write_text("g_per_nm,d_angstrom,kind,phase,hkl\n4.247,2.3546,ring,Au,1 1 1\n")
     bad = res / "samples" / "s2"
     bad.mkdir(parents=True)
-    (bad / "sample.json").write_text(
-        json.dumps({"status": "failed", "error": "img.tif: not an image", "crystallinity": "no_signal"})
-    )
+    write_sample_record(bad / "sample.json", SampleRecord("s2", status="failed", error="img.tif: not an image",
+                                                          crystallinity="no_signal"))
     (res / "samples" / "s3").mkdir(parents=True)  # the image job never finished
     (res / "library").mkdir()
     (res / "library" / "index.csv").write_text(

@@ -28,7 +28,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ringid.core.errors import RingidError
-from ringid.core.model import Geometry
+from ringid.core.model import Geometry, InstrumentProfile
+from ringid.core.records import CalibrationRecord, CalibrationRing, write_calibration_record
 from ringid.core.units import electron_wavelength_angstrom
 
 MATCH_TOLERANCE = 0.005  # relative radius tolerance for a ring to count as assigned
@@ -50,7 +51,7 @@ class RingAssignment:
 
 @dataclass(frozen=True)
 class Calibration:
-    """Result of a calibration, as written to CAL.json.
+    """Result of a calibration (its file is :meth:`record`, a :class:`ringid.core.records.CalibrationRecord`).
 
     geometry: K (Å·px), centre, ε, θ, voltage. Sigmas are standard uncertainties from
     the least-squares covariance scaled by the residual scatter. ring_* arrays are per
@@ -84,70 +85,36 @@ class Calibration:
         """Instrumental ring FWHM (1/nm) at g (1/nm), from the fitted line."""
         return self.fwhm_c0_per_nm + self.fwhm_c1 * np.asarray(g_per_nm, dtype=float)
 
-    def to_record(
-        self, *, pixel_size_um: float | None = None, nominal_camera_constant_A_px: float | None = None
-    ) -> dict:
-        """The CAL.json content (docs/design.md contract fields first)."""
+    def record(self, *, calibration: str = "", pixel_size_um: float | None = None,
+               nominal_camera_constant_A_px: float | None = None) -> CalibrationRecord:
+        """The calibration record of this fit (``calibration`` is the sheet's id; ``pixel_size_um``
+        gives the camera length L = K·p/λ)."""
         g = self.geometry
+        wavelength = electron_wavelength_angstrom(g.voltage_kv)
         resid = 100.0 * (self.ring_g_obs_per_nm - self.ring_g_calc_per_nm) / self.ring_g_calc_per_nm
-        rec = {
-            "camera_constant_A_px": g.camera_constant_A_px,
-            "camera_constant_sigma_A_px": self.camera_constant_sigma_A_px,
-            "center_x_px": g.center_x_px,
-            "center_y_px": g.center_y_px,
-            "center_sigma_px": g.center_sigma_px,
-            "ellipticity": g.ellipticity,
-            "ellipticity_sigma": self.ellipticity_sigma,
-            "ellipse_angle_deg": g.ellipse_angle_deg,
-            "ellipse_angle_sigma_deg": self.ellipse_angle_sigma_deg,
-            "voltage_kv": g.voltage_kv,
-            "wavelength_angstrom": electron_wavelength_angstrom(g.voltage_kv),
-            "standard": self.standard,
-            "standard_source": self.standard_source,
-            "image": self.image,
-            "nominal_camera_constant_A_px": nominal_camera_constant_A_px,
-            "camera_length_mm": (
-                g.camera_constant_A_px * pixel_size_um * 1e-3 / electron_wavelength_angstrom(g.voltage_kv)
-                if pixel_size_um
-                else None
-            ),
-            "pixel_size_um": pixel_size_um,
-            "n_rings_assigned": int(self.ring_d_calc_angstrom.size),
-            "rms_residual_percent": float(np.sqrt(np.mean(resid**2))),
-            "rings": [
-                {
-                    "hkl": h,
-                    "d_calc_angstrom": float(dc),
-                    "g_calc_per_nm": float(10.0 / dc),
-                    "g_obs_per_nm": float(go),
-                    "g_sigma_per_nm": float(gs),
-                    "d_obs_angstrom": float(10.0 / go),
-                    "residual_percent": float(r),
-                    "fwhm_per_nm": float(fw),
-                }
-                for h, dc, go, gs, r, fw in zip(
-                    self.ring_hkl,
-                    self.ring_d_calc_angstrom,
-                    self.ring_g_obs_per_nm,
-                    self.ring_g_sigma_per_nm,
-                    resid,
-                    self.ring_fwhm_per_nm,
-                )
-            ],
-            "instrument_fwhm": {
-                "model": "fwhm_per_nm = c0_per_nm + c1 * g_per_nm (pseudo-Voigt FWHM of the standard's rings); "
-                "eta: their median pseudo-Voigt mixing",
-                "c0_per_nm": self.fwhm_c0_per_nm,
-                "c1": self.fwhm_c1,
-                "eta": self.instrument_eta,
-                "g_min_per_nm": float(np.min(self.ring_g_obs_per_nm)),
-                "g_max_per_nm": float(np.max(self.ring_g_obs_per_nm)),
-            },
-            "unassigned_rings_g_per_nm": [float(x) for x in self.unassigned_g_per_nm],
-            "flags": list(self.flags),
-            "notes": list(self.notes),
-        }
-        return rec
+        rings = tuple(
+            CalibrationRing(hkl=h, d_calc_angstrom=float(dc), g_calc_per_nm=float(10.0 / dc), g_obs_per_nm=float(go),
+                            g_sigma_per_nm=float(gs), d_obs_angstrom=float(10.0 / go), residual_percent=float(r),
+                            fwhm_per_nm=float(fw))
+            for h, dc, go, gs, r, fw in zip(self.ring_hkl, self.ring_d_calc_angstrom, self.ring_g_obs_per_nm,
+                                            self.ring_g_sigma_per_nm, resid, self.ring_fwhm_per_nm)
+        )
+        instrument = InstrumentProfile(self.fwhm_c0_per_nm, self.fwhm_c1, self.instrument_eta,
+                                       float(np.min(self.ring_g_obs_per_nm)), float(np.max(self.ring_g_obs_per_nm)))
+        return CalibrationRecord(
+            calibration=calibration, kind="standard", voltage_kv=g.voltage_kv,
+            camera_constant_A_px=g.camera_constant_A_px, camera_constant_sigma_A_px=self.camera_constant_sigma_A_px,
+            center_x_px=g.center_x_px, center_y_px=g.center_y_px, center_sigma_px=g.center_sigma_px,
+            ellipticity=g.ellipticity, ellipticity_sigma=self.ellipticity_sigma,
+            ellipse_angle_deg=g.ellipse_angle_deg, ellipse_angle_sigma_deg=self.ellipse_angle_sigma_deg,
+            wavelength_angstrom=wavelength, standard=self.standard, standard_source=self.standard_source,
+            image=self.image, nominal_camera_constant_A_px=nominal_camera_constant_A_px,
+            camera_length_mm=g.camera_constant_A_px * pixel_size_um * 1e-3 / wavelength if pixel_size_um else None,
+            pixel_size_um=pixel_size_um, n_rings_assigned=int(self.ring_d_calc_angstrom.size),
+            rms_residual_percent=float(np.sqrt(np.mean(resid**2))), rings=rings, instrument=instrument,
+            unassigned_rings_g_per_nm=tuple(float(x) for x in self.unassigned_g_per_nm),
+            flags=tuple(self.flags), notes=tuple(self.notes),
+        )
 
 
 def assign_rings(radius_px, standard_d_angstrom, standard_intensity=None, *,
@@ -359,7 +326,7 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
     standard_d_angstrom, standard_intensity : array_like
         The standard's ring d-spacings (Å) and relative intensities (optional).
     standard_hkl : sequence of str or None
-        Labels for the rings (written to CAL.json).
+        Labels for the rings (written to the calibration record).
     voltage_kv : float
         Accelerating voltage (kV), recorded.
     nominal_camera_constant_A_px : float or None
@@ -478,7 +445,5 @@ def pyfai_calibrant_rings(name: str, d_min_angstrom: float = 0.7):
 
 
 def write_calibration(path, calibration: Calibration, **kw) -> None:
-    """Write CAL.json atomically (:func:`ringid.core.atomic.write_json`)."""
-    from ringid.core.atomic import write_json
-
-    write_json(path, calibration.to_record(**kw))
+    """Write the calibration record of ``calibration`` atomically (``kw``: those of :meth:`Calibration.record`)."""
+    write_calibration_record(path, calibration.record(**kw))

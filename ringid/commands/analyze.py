@@ -54,9 +54,9 @@ def run(args) -> int:
             )
         step("image -> profile -> rings")
         rec = measure_sample(args.image, cal_path, out, sample=sample)
-    if rec["status"] != "ok":
-        raise RingidError(None, rec["error"])  # the recorded error names the file already
-    step(f"{rec['crystallinity']}, {rec['n_rings']} rings; identifying")
+    if rec.status != "ok":
+        raise RingidError(None, rec.error)  # the recorded error names the file already
+    step(f"{rec.crystallinity}, {rec.n_rings} rings; identifying")
     ident = identify_sample(out, library, library_dir=str(args.library))
     phases = ", ".join(f"{p} ({c:.2f})" for p, c in zip(ident["phases"], ident["confidence"])) or "no phase identified"
     step(f"{phases}; results in {out} (a screening result: confirm critical assignments independently)")

@@ -54,7 +54,7 @@ def run_measure(args) -> int:
     options = ImageOptions(max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                            min_ring_g_per_nm=args.min_ring_g_per_nm)
     records = measure_batch(read_manifest(args.manifest), args.calibrations_dir, args.output, options)
-    return 1 if any(r["status"] == "unwritten" for r in records) else 0
+    return 1 if any(r.status == "unwritten" for r in records) else 0
 
 
 def run_identify(args) -> int:

@@ -28,8 +28,8 @@ def run(args) -> int:
     if args.calibration not in rows:
         raise RingidError(args.sheet, f"no calibration {args.calibration!r} in the sheet")
     rec = make_calibration(rows[args.calibration], args.output, library_dir=args.library)
-    if rec["status"] == "ok":
-        print(f"{args.calibration}: K = {rec['camera_constant_A_px']:.4f} Å·px ({rec['kind']})", file=sys.stderr)
+    if rec.status == "ok":
+        print(f"{args.calibration}: K = {rec.camera_constant_A_px:.4f} Å·px ({rec.kind})", file=sys.stderr)
     else:
-        print(f"ringid: warning: calibration {args.calibration}: {rec['error']} (recorded as failed)", file=sys.stderr)
+        print(f"ringid: warning: calibration {args.calibration}: {rec.error} (recorded as failed)", file=sys.stderr)
     return 0

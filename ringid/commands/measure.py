@@ -46,11 +46,9 @@ def run(args) -> int:
                          calibration_id=args.calibration_id, note=args.note, voltage_kv=args.voltage_kv,
                          max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                          min_ring_g_per_nm=args.min_ring_g_per_nm)
-    if rec["status"] == "ok":
-        print(
-            f"{args.image}: {rec['crystallinity']}, {rec['n_rings']} rings ({rec['timings_s']['total']:.2f} s)",
-            file=sys.stderr,
-        )
+    if rec.status == "ok":
+        print(f"{args.image}: {rec.crystallinity}, {rec.n_rings} rings ({rec.timings_s['total']:.2f} s)",
+              file=sys.stderr)
     else:
-        print(f"ringid: warning: {rec['error']} (recorded as failed)", file=sys.stderr)
+        print(f"ringid: warning: {rec.error} (recorded as failed)", file=sys.stderr)
     return 0

@@ -33,6 +33,24 @@ class Geometry:
 
 
 @dataclass(frozen=True)
+class InstrumentProfile:
+    """Instrumental ring profile measured on the calibration film.
+
+    FWHM(g) = fwhm_c0_per_nm + fwhm_c1 · g (1/nm), pseudo-Voigt mixing ``eta``; measured on the
+    standard's rings between g_min_per_nm and g_max_per_nm (1/nm; NaN when not recorded).
+    """
+
+    fwhm_c0_per_nm: float
+    fwhm_c1: float = 0.0
+    eta: float = 0.5
+    g_min_per_nm: float = math.nan
+    g_max_per_nm: float = math.nan
+
+    def fwhm_per_nm(self, g_per_nm):
+        return self.fwhm_c0_per_nm + self.fwhm_c1 * np.asarray(g_per_nm, dtype=float)
+
+
+@dataclass(frozen=True)
 class Profile:
     """Azimuthally averaged 1D profile on a g grid, and optionally the 2D cake.
 

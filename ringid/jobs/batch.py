@@ -82,13 +82,14 @@ class ImageOptions:
     min_ring_g_per_nm: float = 1.0
 
 
-def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageOptions, log=sys.stderr) -> list[dict]:
+def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageOptions, log=sys.stderr) -> list:
     """The image job of every sample row (``read_manifest``), one after another; returns their records.
 
     Sample ``s`` is written to ``samples_dir/s`` with the calibration record
     ``calibrations_dir/{calibration}.json``. A sample whose files could not be written at all
-    gets ``{"sample": s, "status": "unwritten", "error": ...}`` in the returned list.
+    gets a record with ``status`` ``unwritten`` in the returned list (:class:`ringid.core.records.SampleRecord`).
     """
+    from ringid.core.records import SampleRecord
     from ringid.jobs.measure import _error_text, measure_sample, write_failed_sample
 
     records = []
@@ -106,15 +107,15 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
                 rec = write_failed_sample(out, exc, sample=row.sample, image=row.image, calibration_id=row.calibration,
                                           note=row.note, elapsed_s=time.perf_counter() - t0)
             except Exception as exc2:  # noqa: BLE001 - not even the failure could be written
-                rec = {"sample": row.sample, "status": "unwritten", "error": _error_text(exc2)}
+                rec = SampleRecord(row.sample, status="unwritten", error=_error_text(exc2))
         records.append(rec)
-        if rec["status"] == "ok":
-            print(f"{row.sample}: {rec['crystallinity']}, {rec['n_rings']} rings ({rec['timings_s']['total']:.2f} s)",
+        if rec.status == "ok":
+            print(f"{row.sample}: {rec.crystallinity}, {rec.n_rings} rings ({rec.timings_s['total']:.2f} s)",
                   file=log, flush=True)
-        elif rec["status"] == "failed":
-            print(f"ringid: warning: {row.sample}: {rec['error']} (recorded as failed)", file=log, flush=True)
+        elif rec.status == "failed":
+            print(f"ringid: warning: {row.sample}: {rec.error} (recorded as failed)", file=log, flush=True)
         else:
-            print(f"ringid: error: {out}: could not write the sample's files: {rec['error']}", file=log, flush=True)
+            print(f"ringid: error: {out}: could not write the sample's files: {rec.error}", file=log, flush=True)
     return records
 
 

@@ -17,6 +17,7 @@ import math
 import os
 import time
 import traceback
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -24,6 +25,14 @@ import numpy as np
 from ringid import __version__
 from ringid.core.atomic import atomic_path, write_json
 from ringid.core.errors import RingidError
+from ringid.core.records import (
+    CalibrationRecord,
+    SampleRecord,
+    read_calibration_record,
+    read_sample_record,
+    write_calibration_record,
+    write_sample_record,
+)
 from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD, window_for
 
 DEFAULT_MIN_RING_G_PER_NM = 1.0
@@ -53,19 +62,6 @@ def trim_profile(profile, min_g_per_nm: float):
                    sigma=profile.sigma[keep], cake=cake)
 
 
-def instrument_from_record(rec: dict):
-    """The instrumental ring profile of a calibration, or None when it was not measured (η 0.5
-    when the record predates its measurement)."""
-    from ringid.sample.size import InstrumentProfile
-
-    inst = rec.get("instrument_fwhm") or {}
-    c0, c1, eta = inst.get("c0_per_nm"), inst.get("c1"), inst.get("eta", 0.5)
-    if c0 is None or c1 is None or not math.isfinite(float(c0)):
-        return None
-    eta = float(eta) if eta is not None and math.isfinite(float(eta)) else 0.5
-    return InstrumentProfile(float(c0), float(c1), min(max(eta, 0.0), 1.0))
-
-
 def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike, out_dir: str | os.PathLike, *,
                    sample: str, calibration_id: str = "", note: str = "", voltage_kv: float = math.nan,
                    max_pixels: int | None = None, saturation_level: float | None = None, user_mask=None,
@@ -75,108 +71,98 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
     Rings are searched from ``min_ring_g_per_nm`` outwards (default 1 nm⁻¹, d ≤ 10 Å): inside it
     the direct beam's tail dominates a SAED profile. Lower it for phases with larger d-spacings.
     """
-    from ringid.report.figures import make_thumbnail
-    from ringid.profile.rings import analyze_profile, write_profile_csv, write_rings_csv
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     t_start = time.perf_counter()
-    record = _base_record(sample, image, calibration_id, note)
+    identity = dict(sample=sample, image=str(image), calibration=calibration_id, note=note,
+                    ringid_version=__version__)
     try:
-        from ringid.calibration.record import read_calibration_record
-
-        cal_geom, cal_rec = read_calibration_record(calibration_path)
-        if (
-            math.isfinite(voltage_kv)
-            and math.isfinite(cal_geom.voltage_kv)
-            and abs(voltage_kv - cal_geom.voltage_kv) > 1e-6
-        ):
-            raise RingidError(
-                image, f"recorded at {voltage_kv:g} kV but its calibration is for {cal_geom.voltage_kv:g} kV"
-            )
-        from ringid.image.stage import process_image
-
-        measured_distortion = cal_rec.get("kind", "standard") == "standard"
-        res = process_image(image, cal_geom, fit_ellipse=not measured_distortion, max_pixels=max_pixels,
-                            saturation_level=saturation_level, user_mask_path=user_mask)
-        t0 = time.perf_counter()
-        profile = trim_profile(res.profile, min_ring_g_per_nm)
-        analysis = analyze_profile(profile, instrument=instrument_from_record(cal_rec))
-        t_rings = time.perf_counter() - t0
-        write_rings_csv(out / "measured_rings.csv", analysis)
-        write_profile_csv(out / "profile.csv", profile, analysis)
-        thumb, bin_px = make_thumbnail(res.data, res.mask.mask)
-        with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
-            np.save(tmp, thumb)
-        g = res.geometry
-        size = analysis.size
-        sharp = [r for r in analysis.rings if r.kind == "ring"]
-        characters = sorted({c.character for c in analysis.characters if c and c.character})
-        record.update(
-            {
-                "geometry": {
-                    "center_x_px": g.center_x_px,
-                    "center_y_px": g.center_y_px,
-                    "center_sigma_px": g.center_sigma_px,
-                    "ellipticity": g.ellipticity,
-                    "ellipse_angle_deg": g.ellipse_angle_deg,
-                    "camera_constant_A_px": g.camera_constant_A_px,
-                    "voltage_kv": g.voltage_kv,
-                },
-                "calibration_kind": cal_rec.get("kind", "standard"),
-                "thumbnail_bin_px": bin_px,
-                "crystallinity": analysis.crystallinity.label,
-                "halo_area_fraction": analysis.crystallinity.halo_area_fraction,
-                "n_rings": len(sharp),
-                "n_halos": analysis.crystallinity.n_halos,
-                "crystallite_size_nm": size.size_nm if math.isfinite(size.size_nm) else None,
-                "crystallite_size_sigma_nm": size.size_sigma_nm if math.isfinite(size.size_sigma_nm) else None,
-                "crystallite_size_lower_limit_nm": size.lower_limit_nm if math.isfinite(size.lower_limit_nm) else None,
-                "crystallite_size_meaning": size.meaning,
-                "ring_character": ";".join(characters),
-                "g_range_per_nm": [float(np.nanmin(profile.g_per_nm)), float(np.nanmax(profile.g_per_nm))],
-                "detection_threshold_sigma": analysis.threshold_sigma,
-                "false_alarm_probability": analysis.false_alarm_probability,
-                "chi2_reduced": analysis.chi2_reduced,
-                "masked_fraction": res.mask.fraction_masked,
-                "flags": sorted(set(res.flags) | set(analysis.flags)),
-                "notes": list(res.notes),
-                "warnings": list(res.warnings),
-            }
-        )
-        record["timings_s"] = {**{k: round(v, 4) for k, v in res.timings_s.items()}, "rings": round(t_rings, 4)}
+        record = _measure(image, calibration_path, out, identity, voltage_kv=voltage_kv, max_pixels=max_pixels,
+                          saturation_level=saturation_level, user_mask=user_mask,
+                          min_ring_g_per_nm=min_ring_g_per_nm)
     except Exception as exc:  # noqa: BLE001 - a failure is a result, recorded with its reason
-        _mark_failed(out, record, exc)
-    record.setdefault("timings_s", {})
-    record["timings_s"]["total"] = round(time.perf_counter() - t_start, 4)
-    write_json(out / "sample.json", record)  # written last: its presence means the job finished
+        record = _mark_failed(out, identity, exc)
+    record = replace(record, timings_s={**record.timings_s, "total": round(time.perf_counter() - t_start, 4)})
+    write_sample_record(out / "sample.json", record)  # written last: its presence means the job finished
     return record
 
 
-def _base_record(sample: str, image, calibration_id: str, note: str) -> dict:
-    return {"sample": sample, "status": "ok", "error": "", "image": str(image), "calibration": calibration_id,
-            "note": note, "ringid_version": __version__}
+def _measure(image, calibration_path, out: Path, identity: dict, *, voltage_kv: float, max_pixels, saturation_level,
+             user_mask, min_ring_g_per_nm: float) -> SampleRecord:
+    """The image work of :func:`measure_sample`: writes the tables and thumbnail, returns the record."""
+    from ringid.image.stage import process_image
+    from ringid.profile.rings import analyze_profile, write_profile_csv, write_rings_csv
+    from ringid.report.figures import make_thumbnail
+
+    cal = read_calibration_record(calibration_path)
+    cal_geom = cal.geometry
+    kv = cal_geom.voltage_kv
+    if math.isfinite(voltage_kv) and math.isfinite(kv) and abs(voltage_kv - kv) > 1e-6:
+        raise RingidError(image, f"recorded at {voltage_kv:g} kV but its calibration is for {cal_geom.voltage_kv:g} kV")
+    measured_distortion = cal.kind == "standard"
+    res = process_image(image, cal_geom, fit_ellipse=not measured_distortion, max_pixels=max_pixels,
+                        saturation_level=saturation_level, user_mask_path=user_mask)
+    t0 = time.perf_counter()
+    profile = trim_profile(res.profile, min_ring_g_per_nm)
+    analysis = analyze_profile(profile, instrument=cal.instrument)
+    t_rings = time.perf_counter() - t0
+    write_rings_csv(out / "measured_rings.csv", analysis)
+    write_profile_csv(out / "profile.csv", profile, analysis)
+    thumb, bin_px = make_thumbnail(res.data, res.mask.mask)
+    with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
+        np.save(tmp, thumb)
+    size = analysis.size
+    characters = sorted({c.character for c in analysis.characters if c and c.character})
+
+    def finite(x):
+        return x if math.isfinite(x) else None
+
+    return SampleRecord(
+        **identity,
+        geometry=res.geometry,
+        calibration_kind=cal.kind,
+        thumbnail_bin_px=bin_px,
+        crystallinity=analysis.crystallinity.label,
+        halo_area_fraction=analysis.crystallinity.halo_area_fraction,
+        n_rings=sum(r.kind == "ring" for r in analysis.rings),
+        n_halos=analysis.crystallinity.n_halos,
+        crystallite_size_nm=finite(size.size_nm),
+        crystallite_size_sigma_nm=finite(size.size_sigma_nm),
+        crystallite_size_lower_limit_nm=finite(size.lower_limit_nm),
+        crystallite_size_meaning=size.meaning,
+        ring_character=";".join(characters),
+        g_range_per_nm=(float(np.nanmin(profile.g_per_nm)), float(np.nanmax(profile.g_per_nm))),
+        detection_threshold_sigma=analysis.threshold_sigma,
+        false_alarm_probability=analysis.false_alarm_probability,
+        chi2_reduced=analysis.chi2_reduced,
+        masked_fraction=res.mask.fraction_masked,
+        flags=tuple(sorted(set(res.flags) | set(analysis.flags))),
+        notes=tuple(res.notes),
+        warnings=tuple(res.warnings),
+        timings_s={**{k: round(v, 4) for k, v in res.timings_s.items()}, "rings": round(t_rings, 4)},
+    )
 
 
-def _mark_failed(out: Path, record: dict, exc: BaseException) -> None:
-    """Record ``exc`` as the sample's failure and write its empty tables and thumbnail."""
-    record.update(status="failed", error=_error_text(exc), crystallinity="no_signal", n_rings=0, flags=[])
+def _mark_failed(out: Path, identity: dict, exc: BaseException) -> SampleRecord:
+    """Write the empty tables and thumbnail of a failed sample; return its failed record."""
     for name in ("measured_rings.csv", "profile.csv"):
         _write_empty_table(out / name)
     with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
         np.save(tmp, np.zeros((0, 0), np.uint8))
+    return SampleRecord(**identity, status="failed", error=_error_text(exc), crystallinity="no_signal")
 
 
 def write_failed_sample(out_dir: str | os.PathLike, exc: BaseException, *, sample: str, image, calibration_id: str = "",
-                        note: str = "", elapsed_s: float = 0.0) -> dict:
+                        note: str = "", elapsed_s: float = 0.0) -> SampleRecord:
     """The sample folder of a sample whose image job broke outside ``measure_sample``'s own
     handling (e.g. while writing its record): the same failed record and empty files."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    record = _base_record(sample, image, calibration_id, note)
-    _mark_failed(out, record, exc)
-    record["timings_s"] = {"total": round(elapsed_s, 4)}
-    write_json(out / "sample.json", record)
+    identity = dict(sample=sample, image=str(image), calibration=calibration_id, note=note,
+                    ringid_version=__version__)
+    record = replace(_mark_failed(out, identity, exc), timings_s={"total": round(elapsed_s, 4)})
+    write_sample_record(out / "sample.json", record)
     return record
 
 
@@ -187,52 +173,50 @@ def _write_empty_table(path: Path) -> None:
     write_csv(path, RINGS_CSV_COLUMNS if "rings" in path.name else PROFILE_CSV_COLUMNS, [])
 
 
-def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.PathLike | None = None) -> dict:
+def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.PathLike | None = None
+                     ) -> CalibrationRecord:
     """Write ``calibrations/{id}.json`` for one calibration sheet row; return the record."""
-    from ringid.core.units import electron_wavelength_angstrom, nominal_camera_constant_a_px
-
-    base = {"calibration": row.calibration, "kind": row.kind, "status": "ok", "error": "", "voltage_kv": row.voltage_kv}
     try:
-        if row.kind == "standard":
-            from ringid.calibration.calibrate import calibrate_image
-            from ringid.library.store import read_phase_rings
-
-            rings = read_phase_rings(library_dir, row.standard)
-            cal = calibrate_image(
-                row.image,
-                rings.d_angstrom,
-                voltage_kv=row.voltage_kv,
-                standard_intensity=rings.intensity,
-                standard_hkl=rings.hkl,
-                standard=row.standard,
-                standard_source=f"phase library {library_dir}",
-            )
-            record = {**base, **cal.to_record()}
-        else:
-            if row.kind == "constant":
-                k, note = row.camera_constant_A_px, "known camera constant from the sheet"
-            else:
-                k = nominal_camera_constant_a_px(row.camera_length_mm, row.pixel_size_um, row.voltage_kv)
-                note = f"nominal: L = {row.camera_length_mm:g} mm, pixel {row.pixel_size_um:g} µm (a few % uncertain)"
-            record = {**base, "camera_constant_A_px": k, "camera_constant_sigma_A_px": None, "center_x_px": None,
-                      "center_y_px": None, "ellipticity": 0.0, "ellipse_angle_deg": 0.0,
-                      "wavelength_angstrom": electron_wavelength_angstrom(row.voltage_kv),
-                      "camera_length_mm": None if row.kind == "constant" else row.camera_length_mm,
-                      "pixel_size_um": None if row.kind == "constant" else row.pixel_size_um,
-                      "rings": [], "instrument_fwhm": None, "notes": [note],
-                      "flags": ["distortion_not_measured", "instrument_width_unknown"]}
+        record = _calibrate_row(row, library_dir)
     except Exception as exc:  # noqa: BLE001 - recorded; its samples fail with this reason
-        record = {**base, "status": "failed", "error": _error_text(exc)}
-    write_json(out_path, record)
-    if record["status"] == "ok" and record.get("rings"):
+        record = CalibrationRecord(calibration=row.calibration, kind=row.kind, status="failed",
+                                   error=_error_text(exc), voltage_kv=row.voltage_kv)
+    write_calibration_record(out_path, record)
+    if record.status == "ok" and record.rings:
         from ringid.report.figures import calibration_png
 
         try:
             calibration_png(Path(out_path).with_suffix(".png"), title=f"{row.calibration}: residuals",
-                            residuals=record["rings"])
+                            residuals=record.rings)
         except (OSError, ValueError):
             pass
     return record
+
+
+def _calibrate_row(row, library_dir) -> CalibrationRecord:
+    """The calibration of one sheet row: fitted on a standard film, or a known or nominal camera constant."""
+    from ringid.core.units import electron_wavelength_angstrom, nominal_camera_constant_a_px
+
+    if row.kind == "standard":
+        from ringid.calibration.calibrate import calibrate_image
+        from ringid.library.store import read_phase_rings
+
+        rings = read_phase_rings(library_dir, row.standard)
+        cal = calibrate_image(row.image, rings.d_angstrom, voltage_kv=row.voltage_kv,
+                              standard_intensity=rings.intensity, standard_hkl=rings.hkl, standard=row.standard,
+                              standard_source=f"phase library {library_dir}")
+        return cal.record(calibration=row.calibration)
+    if row.kind == "constant":
+        k, note = row.camera_constant_A_px, "known camera constant from the sheet"
+        length, pixel = None, None
+    else:
+        k = nominal_camera_constant_a_px(row.camera_length_mm, row.pixel_size_um, row.voltage_kv)
+        note = f"nominal: L = {row.camera_length_mm:g} mm, pixel {row.pixel_size_um:g} µm (a few % uncertain)"
+        length, pixel = row.camera_length_mm, row.pixel_size_um
+    return CalibrationRecord(calibration=row.calibration, kind=row.kind, voltage_kv=row.voltage_kv,
+                             camera_constant_A_px=k, wavelength_angstrom=electron_wavelength_angstrom(row.voltage_kv),
+                             camera_length_mm=length, pixel_size_um=pixel, notes=(note,),
+                             flags=("distortion_not_measured", "instrument_width_unknown"))
 
 
 def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = WINDOW_STANDARD,
@@ -247,21 +231,19 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     """
     import json
 
-    from ringid.identify.score import IdentifySettings, LibraryIndex, identify
     from ringid.identify.files import read_observed_rings, write_results
+    from ringid.identify.score import IdentifySettings, LibraryIndex, identify
 
     d = Path(sample_dir)
-    rec = json.loads((d / "sample.json").read_text(encoding="utf-8"))
-    if rec.get("status") != "ok":
-        return _write_failed_identification(d, rec.get("sample", d.name), rec.get("error", ""))
-    kind = rec.get("calibration_kind", "standard")
-    settings = IdentifySettings(dilation_window=window_for(kind, window_standard, window_nominal),
+    rec = read_sample_record(d / "sample.json")
+    if rec.status != "ok":
+        return _write_failed_identification(d, rec.sample, rec.error)
+    settings = IdentifySettings(dilation_window=window_for(rec.calibration_kind, window_standard, window_nominal),
                                 false_identification_rate=false_identification_rate)
     if not isinstance(library, LibraryIndex):
         library = library_index(library, window_standard, window_nominal)
     obs, rows = read_observed_rings(d / "measured_rings.csv")
-    g_range = tuple(rec["g_range_per_nm"]) if rec.get("g_range_per_nm") else None
-    result = identify(obs, library, settings, g_range_per_nm=g_range)
+    result = identify(obs, library, settings, g_range_per_nm=rec.g_range_per_nm)
     write_results(d, rows, obs, result, settings, provenance={"library": library_dir})
     _overview(d, rec, rows, result, library)
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
@@ -300,11 +282,11 @@ def _write_failed_identification(d: Path, sample: str, error: str) -> dict:
            "unexplained_rings": 0, "flags": []}
     write_json(d / "identification.json", out)
     overview_png(d / "overview.png", title=f"{sample}: failed: {error}"[:150],
-                 thumbnail=None, bin_px=1, geometry={}, profile=None, rings=[], references=[])
+                 thumbnail=None, bin_px=1, geometry=None, profile=None, rings=[], references=[])
     return out
 
 
-def _overview(d: Path, rec: dict, rows, result, library) -> None:
+def _overview(d: Path, rec: SampleRecord, rows, result, library) -> None:
     import csv
 
     from ringid.report.figures import overview_png
@@ -339,6 +321,6 @@ def _overview(d: Path, rec: dict, rows, result, library) -> None:
     with open(d / "rings.csv", newline="", encoding="utf-8") as fh:
         ring_rows = list(csv.DictReader(fh))
     label = "; ".join(result.phases) or "no phase identified"
-    overview_png(d / "overview.png", title=f"{rec['sample']}: {rec.get('crystallinity', '')} · {label}",
-                 thumbnail=thumb, bin_px=int(rec.get("thumbnail_bin_px", 1)), geometry=rec.get("geometry", {}),
+    overview_png(d / "overview.png", title=f"{rec.sample}: {rec.crystallinity} · {label}",
+                 thumbnail=thumb, bin_px=rec.thumbnail_bin_px, geometry=rec.geometry,
                  profile=profile, rings=ring_rows, references=refs)

@@ -11,6 +11,8 @@ import os
 
 import numpy as np
 
+from ringid.core.model import Geometry
+
 PHASE_COLOURS = ["#c0392b", "#2471a3", "#1e8449", "#7d3c98", "#b9770e"]
 
 
@@ -45,14 +47,15 @@ def make_thumbnail(image: np.ndarray, mask: np.ndarray | None = None, size_px: i
     return (np.clip(logd / top, 0, 1) * 255).astype(np.uint8), b
 
 
-def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray | None, bin_px: int, geometry: dict,
+def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray | None, bin_px: int,
+                 geometry: Geometry | None,
                  profile: dict | None, rings: list[dict], references: list[tuple[str, object, float]]) -> None:
     """Write the overview figure of one sample.
 
     Parameters
     ----------
     thumbnail, bin_px : the log-scaled thumbnail and its binning factor.
-    geometry : dict with center_x_px, center_y_px, ellipticity, ellipse_angle_deg, camera_constant_A_px.
+    geometry : the pattern's centre, ellipse and camera constant (rings are drawn only when all are known).
     profile : dict of arrays g_per_nm, intensity, background, model (any may be missing).
     rings : rows of rings.csv (g_per_nm, kind, phase, hkl).
     references : (phase id, PhaseRings, dilation) of the identified phases.
@@ -66,13 +69,13 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
     ax_img.set_axis_off()
     if thumbnail is not None and thumbnail.size:
         ax_img.imshow(thumbnail, cmap="magma", origin="upper", interpolation="nearest")
-        k = geometry.get("camera_constant_A_px")
-        cx, cy = geometry.get("center_x_px"), geometry.get("center_y_px")
-        if k and cx is not None and cy is not None and all(map(math.isfinite, (k, cx, cy))):
+        k, cx, cy = (math.nan,) * 3 if geometry is None else (
+            geometry.camera_constant_A_px, geometry.center_x_px, geometry.center_y_px)
+        if k and all(map(math.isfinite, (k, cx, cy))):
             from matplotlib.patches import Ellipse
 
-            eps = float(geometry.get("ellipticity") or 0.0)
-            ang = float(geometry.get("ellipse_angle_deg") or 0.0)
+            eps = geometry.ellipticity if math.isfinite(geometry.ellipticity) else 0.0
+            ang = geometry.ellipse_angle_deg if math.isfinite(geometry.ellipse_angle_deg) else 0.0
             for r in rings:
                 try:
                     g = float(r["g_per_nm"])
@@ -151,18 +154,18 @@ def _save_small_png(fig, path) -> None:
         img.save(tmp, format="PNG", optimize=True)
 
 
-def calibration_png(path: str | os.PathLike, *, title: str, residuals: list[dict]) -> None:
+def calibration_png(path: str | os.PathLike, *, title: str, residuals) -> None:
     """Residual plot of a calibration: (g_obs − g_calc)/g_calc in % against g, labelled by hkl."""
 
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(6.0, 2.6), dpi=100)
-    g = np.array([r["g_calc_per_nm"] for r in residuals], float)
-    rel = np.array([100.0 * (r["g_obs_per_nm"] - r["g_calc_per_nm"]) / r["g_calc_per_nm"] for r in residuals], float)
+    g = np.array([r.g_calc_per_nm for r in residuals], float)
+    rel = np.array([100.0 * (r.g_obs_per_nm - r.g_calc_per_nm) / r.g_calc_per_nm for r in residuals], float)
     ax.axhline(0, color="#888", lw=0.8)
     ax.plot(g, rel, "o", color="#2471a3", ms=4)
     for gi, ri, r in zip(g, rel, residuals):
         ax.annotate(
-            str(r.get("hkl", "")).replace(" ", ""), (gi, ri), fontsize=6, xytext=(2, 3), textcoords="offset points"
+            str(r.hkl).replace(" ", ""), (gi, ri), fontsize=6, xytext=(2, 3), textcoords="offset points"
         )
     ax.set_xlabel("g (1/nm)", fontsize=8)
     ax.set_ylabel("Δg/g (%)", fontsize=8)

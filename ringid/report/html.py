@@ -10,7 +10,9 @@ from pathlib import Path
 
 from ringid import __version__
 from ringid.core.atomic import write_text
-from ringid.report.summary import SCREENING_NOTE, _load_json, _num, write_summary
+from ringid.core.errors import RingidError
+from ringid.core.records import CalibrationRecord, read_calibration_record
+from ringid.report.summary import SCREENING_NOTE, _load_json, _num, load_sample_record, write_summary
 
 _CSS = """
 body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:0 auto;max-width:1200px;padding:0 16px 40px;color:#1d232a}
@@ -71,7 +73,7 @@ def _read_csv(path: Path) -> list[dict]:
 
 
 def _sample_section(row: dict, sample_dir: Path) -> str:
-    rec = _load_json(sample_dir / "sample.json")
+    rec = load_sample_record(row["sample"], sample_dir)
     ident = _load_json(sample_dir / "identification.json")
     parts = [f'<div class="sample" id="s-{_e(row["sample"])}"><h3>{_e(row["sample"])}</h3>']
     meta = [f"status: <b>{_e(row['status'])}</b>", f"crystallinity: <b>{_e(row['crystallinity'] or '—')}</b>"]
@@ -112,8 +114,8 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
         body = [[_num(r[c], fmt[c]) if c in fmt and r[c] not in ("", None) else r[c] for c in cols] for r in rings]
         parts.append(_table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}))
     parts += _identification_notes(ident)
-    geo = rec.get("geometry") or {}
-    if geo:
+    if rec.geometry is not None:
+        geo = rec.to_json()["geometry"]
         parts.append(
             '<p class="meta">geometry: ' + ", ".join(f"{_e(k)} = {_e(_num(v, '.6g'))}" for k, v in geo.items()) + "</p>"
         )
@@ -168,21 +170,20 @@ def write_report(
     parts.append("<h2>Calibrations</h2>")
     cal_rows = []
     for cal in calibrations:
-        rec = _load_json(results / "calibrations" / f"{cal}.json")
-        cal_rows.append(
-            [
-                cal,
-                rec.get("status", "failed" if not rec else "ok"),
-                rec.get("kind", ""),
-                rec.get("standard", ""),
-                _num(rec.get("camera_constant_A_px"), ".6g"),
-                _num(rec.get("camera_constant_sigma_A_px"), ".2g"),
-                _num(rec.get("ellipticity"), ".5f"),
-                _num(rec.get("ellipse_angle_deg"), ".2f"),
-                _num(rec.get("voltage_kv"), "g"),
-                rec.get("error", ""),
-            ]
-        )
+        try:
+            rec = read_calibration_record(results / "calibrations" / f"{cal}.json", require_ok=False)
+        except RingidError as exc:
+            rec = CalibrationRecord(cal, kind="", status="failed", error=str(exc))
+        ok = rec.status == "ok"
+        cal_rows.append([
+            cal, rec.status, rec.kind, rec.standard,
+            _num(rec.camera_constant_A_px, ".6g"),
+            _num(rec.camera_constant_sigma_A_px, ".2g"),
+            _num(rec.ellipticity if ok else None, ".5f"),
+            _num(rec.ellipse_angle_deg if ok else None, ".2f"),
+            _num(rec.voltage_kv, "g"),
+            rec.error,
+        ])
     parts.append(
         _table(
             ["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)", "kV", "error"],

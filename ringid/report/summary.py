@@ -7,8 +7,8 @@ figures inlined, sortable and filterable summary table). Every text that comes f
 files (sample ids, notes, CIF titles, errors) is HTML-escaped. What it does not do: compute
 anything about the patterns.
 
-Imports only the standard library; the figures are made by ``ringid.report.figures`` in the jobs
-that own the data.
+The figures are made by ``ringid.report.figures`` in the jobs that own the data; this module
+only reads the records (:mod:`ringid.core.records`) and tables.
 """
 
 from __future__ import annotations
@@ -19,6 +19,8 @@ import os
 from pathlib import Path
 
 from ringid.core.atomic import write_csv
+from ringid.core.errors import RingidError
+from ringid.core.records import SampleRecord, read_sample_record
 
 SUMMARY_COLUMNS = [
     "sample", "status", "crystallinity", "phases", "alternatives", "confidence", "center_x_px", "center_y_px",
@@ -49,48 +51,56 @@ def _num(x, fmt: str) -> str:
         return str(x)
 
 
+def load_sample_record(sample: str, sample_dir: Path) -> SampleRecord:
+    """A sample's record; a missing or unreadable one is a failed record saying why."""
+    path = sample_dir / "sample.json"
+    if not path.is_file():
+        return SampleRecord(sample, status="failed", error="no sample record (the image job did not finish)",
+                            crystallinity="no_signal")
+    try:
+        return read_sample_record(path)
+    except RingidError as exc:
+        return SampleRecord(sample, status="failed", error=str(exc), crystallinity="no_signal")
+
+
 def summary_row(sample: str, sample_dir: Path) -> dict:
     """One summary row from a sample's output folder (missing files make a failed row)."""
-    rec = _load_json(sample_dir / "sample.json")
+    rec = load_sample_record(sample, sample_dir)
     ident = _load_json(sample_dir / "identification.json")
-    if not rec:
-        rec = {"status": "failed", "error": "no sample record (the image job did not finish)"}
-    status = rec.get("status", "failed")
-    error = rec.get("error", "")
+    status, error = rec.status, rec.error
     if status == "ok" and not ident:
         status, error = "failed", "no identification record"
     if ident.get("status") == "failed":
         status, error = "failed", ident.get("error", "identification failed")
-    geo = rec.get("geometry") or {}
+    geo = rec.geometry
     phases = ident.get("phases", [])
     alts = []
     for group in ident.get("alternatives", []):
         alts += [a for a in group if a not in alts and a not in phases]
-    flags = list(rec.get("flags", [])) + [f for f in ident.get("flags", []) if f not in rec.get("flags", [])]
-    size = rec.get("crystallite_size_nm")
-    size_text = _num(size, ".3g")
-    if rec.get("crystallite_size_lower_limit_nm") and not size_text:
-        size_text = f">{_num(rec['crystallite_size_lower_limit_nm'], '.3g')}"
+    flags = list(rec.flags) + [f for f in ident.get("flags", []) if f not in rec.flags]
+    size_text = _num(rec.crystallite_size_nm, ".3g")
+    if rec.crystallite_size_lower_limit_nm and not size_text:
+        size_text = f">{_num(rec.crystallite_size_lower_limit_nm, '.3g')}"
     return {
         "sample": sample,
         "status": status,
-        "crystallinity": rec.get("crystallinity", "no_signal" if status == "failed" else ""),
+        "crystallinity": rec.crystallinity,
         "phases": ";".join(phases),
         "alternatives": ";".join(alts),
         "confidence": ";".join(_num(c, ".3f") for c in ident.get("confidence", [])),
-        "center_x_px": _num(geo.get("center_x_px"), ".3f"),
-        "center_y_px": _num(geo.get("center_y_px"), ".3f"),
-        "ellipticity": _num(geo.get("ellipticity"), ".5f"),
+        "center_x_px": _num(geo.center_x_px if geo else None, ".3f"),
+        "center_y_px": _num(geo.center_y_px if geo else None, ".3f"),
+        "ellipticity": _num(geo.ellipticity if geo else None, ".5f"),
         "crystallite_size_nm": size_text,
-        "n_rings": str(rec.get("n_rings", 0)),
+        "n_rings": str(rec.n_rings),
         "unexplained_rings": str(ident.get("unexplained_rings", 0 if status == "failed" else "")),
         "flags": ";".join(flags),
         "error": " ".join(str(error).split()),
-        "calibration": rec.get("calibration", ""),
+        "calibration": rec.calibration,
         "fractions_rough": ";".join(_num(f, ".2f") for f in ident.get("fractions_rough", [])),
-        "crystallite_size_sigma_nm": _num(rec.get("crystallite_size_sigma_nm"), ".2g"),
-        "ring_character": rec.get("ring_character", ""),
-        "note": rec.get("note", ""),
+        "crystallite_size_sigma_nm": _num(rec.crystallite_size_sigma_nm, ".2g"),
+        "ring_character": rec.ring_character,
+        "note": rec.note,
         # rings that no reported phase explains: their d (Å) and share of the sharp rings' area
         "unexplained_d_angstrom": ";".join(_num(u.get("d_angstrom"), ".4f") for u in ident.get("unexplained", [])),
         "unexplained_intensity_share": _num(ident.get("unexplained_intensity_share"), ".3f"),

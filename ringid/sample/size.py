@@ -37,6 +37,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ringid.core.model import InstrumentProfile
+
 K_SPHERE_DIAMETER = 4.0 / 3.0  # Langford & Wilson 1978: sphere diameter, integral breadth
 # smallest sample breadth resolved, as a fraction of the instrumental breadth (common practice,
 # not from a source: line-broadening sizes are not trusted where the broadening is below about a
@@ -44,21 +46,6 @@ K_SPHERE_DIAMETER = 4.0 / 3.0  # Langford & Wilson 1978: sphere diameter, integr
 RESOLUTION_FRACTION = 0.1
 PHI_LORENTZ = 2.0 / math.pi  # FWHM/β of a Lorentzian
 PHI_GAUSS = 2.0 * math.sqrt(math.log(2.0) / math.pi)  # FWHM/β of a Gaussian
-
-
-@dataclass(frozen=True)
-class InstrumentProfile:
-    """Instrumental ring profile measured on the calibration film.
-
-    FWHM(g) = fwhm_c0_per_nm + fwhm_c1 · g (1/nm), pseudo-Voigt mixing ``eta``.
-    """
-
-    fwhm_c0_per_nm: float
-    fwhm_c1: float = 0.0
-    eta: float = 0.5
-
-    def fwhm_per_nm(self, g_per_nm):
-        return self.fwhm_c0_per_nm + self.fwhm_c1 * np.asarray(g_per_nm, dtype=float)
 
 
 @dataclass(frozen=True)
