@@ -1,8 +1,8 @@
 # ringid workflow: SAED ring patterns -> phases, sizes, report.
 #   snakemake --cores 2                          (the synthetic demo: run `ringid demo` first)
 #   snakemake --cores 8 --configfile my.yaml     (your sheets and CIFs)
-# Stages (ringid/workflow/rules/): library -> calibration -> sample (image work) -> identify -> report;
-# with batch_size > 1, batch.smk runs the sample and identify stages batch_size samples per job.
+# Stages (ringid/workflow/rules/): library -> calibration -> batches (image work, then identification,
+# batch_size samples per job) -> report.
 
 import sys
 from pathlib import Path
@@ -26,16 +26,7 @@ validate(config, "config/config.schema.yaml")  # fills the defaults
 include: "ringid/workflow/rules/common.smk"
 include: "ringid/workflow/rules/library.smk"
 include: "ringid/workflow/rules/calibration.smk"
-if config["batch_size"] == 1:  # one job per sample and stage
-
-    include: "ringid/workflow/rules/sample.smk"
-    include: "ringid/workflow/rules/identify.smk"
-
-else:  # batch_size samples per job and stage
-
-    include: "ringid/workflow/rules/batch.smk"
-
-
+include: "ringid/workflow/rules/batch.smk"
 include: "ringid/workflow/rules/report.smk"
 
 

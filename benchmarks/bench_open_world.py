@@ -142,7 +142,7 @@ def rate_figures(library, n, seed):
         for _ in range(n):
             res = identify(random_ring_list(rng, int(rng.integers(5, 61))), index, IdentifySettings(dilation_window=w))
             hits += bool(res.phases)
-            p = [c["false_identification_probability"] for c in res.candidates]
+            p = [c.false_identification_probability for c in res.candidates]
             smallest.append(min([x for x in p if math.isfinite(x)], default=1.0))
         smallest = np.array(smallest)
         shares = ", ".join(f"p<{q}: {np.mean(smallest < q):.3f}" for q in (0.01, 0.05, 0.1, 0.3))

@@ -49,7 +49,7 @@ def test_batches_are_consecutive_chunks_of_the_sorted_ids_whatever_the_sheet_ord
     assert list(batches) == ["b001", "b002", "b003"]
     assert [len(v) for v in batches.values()] == [4, 4, 3]
     assert [s for chunk in batches.values() for s in chunk] == sorted(ids)
-    assert list(make_batches(ids, 1).values()) == [[s] for s in sorted(ids)]
+    assert make_batches(ids, 1) == {s: [s] for s in sorted(ids)}  # a batch of one is named after its sample
     assert list(make_batches(ids, 50).values()) == [sorted(ids)]
 
 

@@ -56,7 +56,7 @@ def test_pyfai_lines_rank_the_right_phase_first(library, calibrant, n_lines):
     _, d = pyfai_calibrant(calibrant)
     g = perturbed(10.0 / d[:n_lines], 0.001, seed=n_lines)  # positions off by ±0.1 %
     result = identify(observed(g), library)  # intensities absent: all areas equal
-    assert result.candidates[0]["phase"] == OUTSIDE_LISTS[calibrant]
+    assert result.candidates[0].phase == OUTSIDE_LISTS[calibrant]
     assert result.phases[0] == OUTSIDE_LISTS[calibrant]
 
 
@@ -149,8 +149,8 @@ def test_refined_cubic_lattice_parameter(library, by_phase):
     assert result.phases == ("Cu",)
     a0 = by_phase["Cu"].meta["cell"]["a_angstrom"]
     ref = result.refined[0]
-    assert ref["a_angstrom"] == pytest.approx(a0 * 1.003, abs=3 * ref["a_sigma_angstrom"])
-    assert ref["a_sigma_angstrom"] < 0.001 * a0
+    assert ref.a_angstrom == pytest.approx(a0 * 1.003, abs=3 * ref.a_sigma_angstrom)
+    assert ref.a_sigma_angstrom < 0.001 * a0
 
 
 def test_refined_hexagonal_a_and_c(library, by_phase):
@@ -165,8 +165,8 @@ def test_refined_hexagonal_a_and_c(library, by_phase):
     result = identify(observed(g, zno.intensity[keep][:10], rel_sigma=1e-4), library)
     assert result.phases == ("ZnO",)
     ref = result.refined[0]
-    assert ref["a_angstrom"] == pytest.approx(a, rel=3e-4)
-    assert ref["c_angstrom"] == pytest.approx(c, rel=3e-4)
+    assert ref.a_angstrom == pytest.approx(a, rel=3e-4)
+    assert ref.c_angstrom == pytest.approx(c, rel=3e-4)
 
 
 def test_scores_do_not_depend_on_library_order_or_size(library, by_phase):
@@ -175,9 +175,9 @@ def test_scores_do_not_depend_on_library_order_or_size(library, by_phase):
     full = identify(obs, library)
     rev = identify(obs, list(reversed(library)))
     small = identify(obs, [by_phase[p] for p in ("TiO2_rutile", "SnO2", "Au", "Si")])
-    s_full = {c["phase"]: c["score"] for c in full.candidates}
-    s_rev = {c["phase"]: c["score"] for c in rev.candidates}
-    s_small = {c["phase"]: c["score"] for c in small.candidates}
+    s_full = {c.phase: c.score for c in full.candidates}
+    s_rev = {c.phase: c.score for c in rev.candidates}
+    s_small = {c.phase: c.score for c in small.candidates}
     assert s_full == s_rev
     for phase, score in s_small.items():
         assert score == pytest.approx(s_full[phase], abs=1e-9)

@@ -72,7 +72,7 @@ def test_library_phases_from_outside_line_lists_are_still_found(index, calibrant
     g = lines(calibrant, 10, seed=3)
     result = identify(as_observed(g, np.ones(len(g))), index, IdentifySettings(dilation_window=WINDOWS[window]))
     if window == "nominal" and not result.phases:
-        assert "not_significant" in result.flags and result.candidates[0]["phase"] == INSIDE[calibrant]
+        assert "not_significant" in result.flags and result.candidates[0].phase == INSIDE[calibrant]
         return
     named = set(result.phases[:1]) | set(result.alternatives[0] if result.alternatives else ())
     assert INSIDE[calibrant] in named
@@ -85,7 +85,7 @@ def test_five_fcc_lines_are_not_enough_at_the_nominal_window(index, window):
     metal within 3 % (Cu, 2.6 % larger) fits them as well, so the answer is Ni or, flagged, nothing."""
     g = lines("Ni", 5)
     result = identify(as_observed(g, np.ones(5)), index, IdentifySettings(dilation_window=WINDOWS[window]))
-    assert result.candidates[0]["phase"] == "Ni"
+    assert result.candidates[0].phase == "Ni"
     if window == "standard":
         assert result.phases == ("Ni",)
     else:
@@ -144,8 +144,8 @@ def test_weak_rings_that_match_do_not_excuse_missing_strong_ones(library, index)
     obs = as_observed(np.r_[g[weak], other.g_per_nm], np.r_[np.full(len(weak), 5.0), other.area])
     result = identify(obs, index, IdentifySettings(dilation_window=0.005))
     assert "Ni" not in result.phases
-    ni_row = next(c for c in result.candidates if c["phase"] == "Ni")
-    assert ni_row["n_missing_major"] >= 2
+    ni_row = next(c for c in result.candidates if c.phase == "Ni")
+    assert ni_row.n_missing_major >= 2
 
 
 def _reported_share(index, window, n_lists, seed):

@@ -31,6 +31,7 @@ CANNOT_RUN_CLUSTER = 77
 
 # Three patterns of different kinds: one phase in a film, nanoparticles, two phases.
 SAMPLES = ("film_anneal_400C", "np_CeO2_batch_B", "np_Ni_NiO_core_shell")
+GROUP_BATCHES = 2  # batches per SLURM job in the test (the profile's default is 1)
 # The phases of those samples, the calibration standard (Au) and a few that must not be chosen;
 # a small library keeps the test short (the shipped one adds ~4 s of job start per CIF on SLURM).
 PHASES = ("Au", "TiO2_anatase", "TiO2_rutile", "CeO2", "Ni", "NiO", "ZnO", "Cu")
@@ -129,7 +130,7 @@ def inputs(tmp_path_factory):
     phases.mkdir()
     for phase in PHASES:
         shutil.copy(REFERENCE_PHASES / f"{phase}.cif", phases / f"{phase}.cif")
-    # batch_size 1: the profile's groups name the one-sample rules (measure, identify)
+    # batch_size 1: a batch per sample, so the grouping of batches into SLURM jobs is seen
     return {"base": base, "config": [f"samples={demo / 'subset.csv'}",
                                      f"calibrations={demo / 'calibrations.csv'}", f"phases_dir={phases}",
                                      "batch_size=1"]}
@@ -162,6 +163,7 @@ def test_workflow_on_slurm_equals_local_run(slurm_cluster, inputs, tmp_path):
     # fail and the executor would wait forever); MinJobAge=300 s keeps finished jobs listed.
     slurm_s, log = run_logged(
         snakemake_command(SLURM_TIMEOUT_S, "--profile", str(SLURM_PROFILE), "--slurm-status-command", "squeue",
+                          "--group-components", f"per_batch={GROUP_BATCHES}", "library=10",
                           "--slurm-logdir", str(tmp_path / "slurm_logs"), "--slurm-keep-successful-logs",
                           "--config", *inputs["config"], f"results_dir={slurm_results}"),
         tmp_path / "slurm.log", env, SLURM_TIMEOUT_S)
@@ -181,10 +183,11 @@ def test_workflow_on_slurm_equals_local_run(slurm_cluster, inputs, tmp_path):
                           timeout=30, check=True).stdout.strip()
     assert {host for _, _, host in jobs.values()} == {node}, jobs
 
-    # The cheap jobs went as groups: measure+identify per sample, the per-CIF library jobs.
+    # The cheap jobs went as groups: a batch's image and identification jobs, GROUP_BATCHES batches
+    # to a SLURM job; the per-CIF library jobs as the profile says.
     components = profile_group_components()
     comments = [comment for _, comment, _ in jobs.values()]
-    assert sum(c.startswith("rule_per_sample_") for c in comments) == math.ceil(len(SAMPLES) / components["per_sample"])
+    assert sum(c.startswith("rule_per_batch_") for c in comments) == math.ceil(len(SAMPLES) / GROUP_BATCHES)
     assert sum(c.startswith("rule_library_library_phase") for c in comments) == math.ceil(
         len(PHASES) / components["library"]
     )

@@ -72,7 +72,7 @@ def run(tmp_path_factory):
     write_sheet(base / "demo" / "subset.csv", [r for r in rows if r["sample"] in SUBSET], fieldnames=list(rows[0]))
     phases = base / "phases"
     shutil.copytree(REFERENCE_PHASES, phases)
-    # batch_size 1: one job per sample and stage (the job counts below); batches: tests/test_batch.py
+    # batch_size 1: batches of one sample, named after it (the job counts below); larger: tests/test_batch.py
     config = [f"samples={base / 'demo' / 'subset.csv'}", f"calibrations={base / 'demo' / 'calibrations.csv'}",
               f"results_dir={base / 'results'}", f"phases_dir={phases}", "batch_size=1"]
     snakemake("--cores", "2", "--config", *config)
@@ -116,9 +116,10 @@ def test_contract_files_and_columns(run):
     assert cal["camera_constant_A_px"] == pytest.approx(CAMERA_CONSTANT_A_PX * 512 / 2048, rel=5e-4)
     index = read_csv(results / "library" / "index.csv")
     assert len(index) == len(list(run["phases"].glob("*.cif")))
-    for log in ("report.log", "library/index.log", f"samples/{SUBSET[0]}.log"):
+    for log in ("report.log", "library/index.log", f"batches/measure_{SUBSET[0]}.log",
+                f"batches/identify_{SUBSET[0]}.log"):
         assert (results / "logs" / log).is_file()
-    assert (results / "benchmarks" / "samples" / f"{SUBSET[0]}.tsv").is_file()
+    assert (results / "benchmarks" / "batches" / f"measure_{SUBSET[0]}.tsv").is_file()
     html = (results / "report.html").read_text()
     assert "screening result" in html.lower() and html.count('class="sample"') == len(SUBSET)
 
@@ -151,8 +152,9 @@ def test_new_cif_reruns_library_identify_and_report_only(run):
         res = snakemake("-n", "--config", *run["config"])
         counts = job_counts(res.stdout)
         assert counts.get("library_phase") == 1 and counts.get("library_index") == 1
-        assert counts.get("identify") == len(SUBSET) and counts.get("report") == 1
-        assert "measure" not in counts and "calibration" not in counts
+        assert counts.get("report") == 1 and "calibration" not in counts
+        assert {rule for rule in counts if rule.startswith(("identify_", "measure_"))} == {
+            f"identify_{s}" for s in SUBSET}
     finally:
         new.unlink()
 
@@ -165,7 +167,7 @@ def test_new_sample_runs_only_that_sample_and_the_report(run):
     write_sheet(sheet, [r for r in rows if r["sample"] in SUBSET] + extra, fieldnames=list(rows[0]))
     config = [c if not c.startswith("samples=") else f"samples={sheet}" for c in run["config"]]
     counts = job_counts(snakemake("-n", "--config", *config).stdout)
-    assert counts == {"measure": 1, "identify": 1, "report": 1, "all": 1}
+    assert counts == {"measure_np_CeO2_batch_A": 1, "identify_np_CeO2_batch_A": 1, "report": 1, "all": 1}
 
 
 def test_bad_config_key_stops_at_start(run):

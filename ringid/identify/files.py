@@ -73,11 +73,11 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
 
     out = Path(out_dir)
     write_csv(out / "phases.csv", PHASES_COLUMNS, (
-        [_fmt(r + 1), c["phase"], _fmt(c["score"], 5), _fmt(c["confidence"], 4), _fmt(c["in_answer"]),
-         _fmt(c["dilation"], 7), _fmt(c["dilation_sigma"], 3), _fmt(c["n_matched"]), _fmt(c["n_missing_strong"]),
-         c["missing_strong_rings"], _fmt(c["explained_intensity_share"], 4),
-         _fmt(c["false_identification_probability"], 3), _fmt(c["free_dilation"], 7), _fmt(c["free_dilation_sigma"], 3),
-         _fmt(c["lattice_mismatch"])]
+        [_fmt(r + 1), c.phase, _fmt(c.score, 5), _fmt(c.confidence, 4), _fmt(c.in_answer),
+         _fmt(c.dilation, 7), _fmt(c.dilation_sigma, 3), _fmt(c.n_matched), _fmt(c.n_missing_strong),
+         c.missing_strong_rings, _fmt(c.explained_intensity_share, 4),
+         _fmt(c.false_identification_probability, 3), _fmt(c.free_dilation, 7), _fmt(c.free_dilation_sigma, 3),
+         _fmt(c.lattice_mismatch)]
         for r, c in enumerate(result.candidates)
     ))
     # rings.csv: every input row (halos too) with its assignment; sharp rings in input order
@@ -106,10 +106,7 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
         "alternatives": [list(a) for a in result.alternatives],
         "separation_sigma": [round(s, 3) if math.isfinite(s) else None for s in result.separation_sigma],
         "fractions_rough": [round(f, 4) if math.isfinite(f) else None for f in result.fractions_rough],
-        "refined_lattice": [
-            {k: (round(v, 7) if isinstance(v, float) and math.isfinite(v) else None) for k, v in r.items()}
-            for r in result.refined
-        ],
+        "refined_lattice": [r.to_json() for r in result.refined],
         "false_identification_probability": [_round_sig(p) for p in result.false_identification_probability],
         "unexplained_rings": result.unexplained_rings,
         "unexplained_intensity_share": round(result.unexplained_intensity_share, 4),

@@ -151,6 +151,49 @@ class RingAssignment:
 
 
 @dataclass(frozen=True)
+class RefinedLattice:
+    """A reported phase's lattice as the sample's rings place it: the isotropic dilation (1 = the
+    library's cell) with its σ; the cubic a, or tetragonal/hexagonal a and c (Å) with σ, when the
+    library gives the cell (None: not refined; NaN σ: not determined)."""
+
+    dilation: float
+    dilation_sigma: float
+    a_angstrom: float | None = None
+    a_sigma_angstrom: float | None = None
+    c_angstrom: float | None = None
+    c_sigma_angstrom: float | None = None
+
+    def to_json(self) -> dict:
+        """The refined values present, rounded to 7 digits (None when not finite)."""
+        return {k: (round(v, 7) if math.isfinite(v) else None) for k, v in vars(self).items() if v is not None}
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One row of phases.csv: a library phase scoring above the floor (or in the answer).
+
+    dilation (lattice scale in the window) and free_dilation (unconstrained least squares) with σ;
+    false_identification_probability as if it were the first phase; confidence NaN unless reported.
+    """
+
+    phase: str
+    score: float
+    dilation: float
+    dilation_sigma: float
+    n_matched: int
+    missing_strong_rings: str
+    n_missing_strong: int
+    explained_intensity_share: float
+    in_answer: bool
+    confidence: float
+    false_identification_probability: float
+    free_dilation: float
+    free_dilation_sigma: float
+    lattice_mismatch: bool
+    n_missing_major: int
+
+
+@dataclass(frozen=True)
 class Identification:
     """The answer for one sample."""
 
@@ -159,10 +202,10 @@ class Identification:
     alternatives: tuple[tuple[str, ...], ...]
     separation_sigma: tuple[float, ...]
     fractions_rough: tuple[float, ...]
-    refined: tuple[dict, ...]
+    refined: tuple[RefinedLattice, ...]
     assignments: tuple[RingAssignment | None, ...]
     unexplained: tuple[int, ...]
-    candidates: tuple[dict, ...]
+    candidates: tuple[Candidate, ...]
     flags: tuple[str, ...] = field(default_factory=tuple)
     false_identification_probability: tuple[float, ...] = ()  # per reported phase, before the set's control
     unexplained_intensity_share: float = 0.0  # share of the sharp rings' area that no reported phase explains
@@ -798,7 +841,7 @@ def _confidences(ctx: _Sample, chosen, chosen_p, unexplained_share):
     return confidences, alternatives, separations
 
 
-def _candidates(ctx: _Sample, chosen, confidences) -> list[dict]:
+def _candidates(ctx: _Sample, chosen, confidences) -> list[Candidate]:
     """The phases.csv rows: every library phase scoring above the floor (or in the answer), with its
     own false-identification probability as if it were the first phase."""
     rows, settings = ctx.rows, ctx.settings
@@ -810,17 +853,17 @@ def _candidates(ctx: _Sample, chosen, confidences) -> list[dict]:
         if m.score <= settings.candidate_floor and not in_answer:
             continue
         q = index_of[id(m)]
-        out.append({
-            "phase": m.phase, "score": m.score, "dilation": m.dilation, "dilation_sigma": m.dilation_sigma,
-            "n_matched": m.n_matched, "missing_strong_rings": ";".join(m.missing_strong),
-            "n_missing_strong": len(m.missing_strong), "explained_intensity_share": m.explained_share,
-            "in_answer": in_answer,
-            "confidence": next((conf for c, conf in zip(chosen, confidences) if c is m), math.nan),
-            "false_identification_probability": float(single_p[q]) if rows.eligible[q] else math.nan,
-            "free_dilation": float(rows.free_dilation[q]), "free_dilation_sigma": float(rows.free_dilation_sigma[q]),
-            "lattice_mismatch": bool(rows.lattice_mismatch[q]),
-            "n_missing_major": int(rows.n_missing_top[q]),
-        })
+        out.append(Candidate(
+            phase=m.phase, score=m.score, dilation=m.dilation, dilation_sigma=m.dilation_sigma,
+            n_matched=m.n_matched, missing_strong_rings=";".join(m.missing_strong),
+            n_missing_strong=len(m.missing_strong), explained_intensity_share=m.explained_share,
+            in_answer=in_answer,
+            confidence=next((conf for c, conf in zip(chosen, confidences) if c is m), math.nan),
+            false_identification_probability=float(single_p[q]) if rows.eligible[q] else math.nan,
+            free_dilation=float(rows.free_dilation[q]), free_dilation_sigma=float(rows.free_dilation_sigma[q]),
+            lattice_mismatch=bool(rows.lattice_mismatch[q]),
+            n_missing_major=int(rows.n_missing_top[q]),
+        ))
     return out
 
 
@@ -1043,12 +1086,12 @@ def _cell_volume(cell: dict) -> float:
     return a * b * c * math.sqrt(max(0.0, 1 - ca * ca - cb * cb - cg * cg + 2 * ca * cb * cg))
 
 
-def _refine_lattice(match: PhaseMatch, ph: _PhaseArrays, obs, tau, assignments) -> dict:
+def _refine_lattice(match: PhaseMatch, ph: _PhaseArrays, obs, tau, assignments) -> RefinedLattice:
     """Refined lattice: isotropic dilation always; cubic a; tetragonal/hexagonal a and c
     from linear least squares in (1/a², 1/c²) when at least three rings fix both."""
     cell = ph.meta.get("cell") or {}
     system = (ph.meta.get("crystal_system") or "").lower()
-    out = {"dilation": match.dilation, "dilation_sigma": match.dilation_sigma}
+    out = {"dilation": match.dilation, "dilation_sigma": match.dilation_sigma}  # the RefinedLattice's fields
     a0 = cell.get("a_angstrom")
     if a0:
         out["a_angstrom"] = a0 * match.dilation
@@ -1080,4 +1123,4 @@ def _refine_lattice(match: PhaseMatch, ph: _PhaseArrays, obs, tau, assignments) 
                     out["a_angstrom"], out["c_angstrom"] = float(a), float(c)
                     out["a_sigma_angstrom"] = float(0.5 * a**3 * math.sqrt(cov[0, 0]))
                     out["c_sigma_angstrom"] = float(0.5 * c**3 * math.sqrt(cov[1, 1]))
-    return out
+    return RefinedLattice(**out)

@@ -4,10 +4,11 @@ the two batch loops (image work, identification) that run in one interpreter.
 A batch is a run of consecutive sample ids in sorted order (``make_batches``), so the cut
 depends only on the ids and ``batch_size``, never on the order of the sheet's rows. The
 per-sample work is ``ringid.jobs.measure.measure_sample`` and ``identify_sample``, called one sample
-after another (one image in memory at a time), and every sample's files are exactly those of a
-one-sample job. A sample whose work raises anything is recorded as failed in its own files and
-the loop goes on with the next one.
+after another (one image in memory at a time), and every sample's files are exactly those of
+``ringid measure`` and ``ringid identify`` run on it alone. A sample whose work raises anything
+is recorded as failed in its own files and the loop goes on with the next one.
 
+Every workflow run goes through batches; ``batch_size: 1`` makes batches of one sample each.
 The manifest of a batch is a sample sheet (``sample,image,calibration,voltage_kv,note``) with
 absolute image paths, read back with ``ringid.jobs.sheets``; the workflow feeds it on stdin.
 This module imports only the standard library at module level (the workflow imports it when it
@@ -29,11 +30,15 @@ MANIFEST_COLUMNS = ["sample", "image", "calibration", "voltage_kv", "note"]
 def make_batches(sample_ids, batch_size: int) -> dict[str, list[str]]:
     """``{batch id: sample ids}``: sorted ids cut into consecutive chunks of ``batch_size``.
 
-    Batch ids are ``b001``, ``b002``, ... (zero-padded to at least 3 digits).
+    Batch ids are ``b001``, ``b002``, ... (zero-padded to at least 3 digits); with ``batch_size``
+    1 each batch is named after its sample, so a sample added to the sheet changes no other
+    batch's name or membership (a batch's jobs rerun when its membership changes).
     """
     if int(batch_size) != batch_size or batch_size < 1:
         raise ValueError(f"batch_size must be an integer >= 1, got {batch_size!r}")
     ids = sorted(sample_ids)
+    if batch_size == 1:
+        return {s: [s] for s in ids}
     chunks = [ids[i : i + batch_size] for i in range(0, len(ids), batch_size)]
     width = max(3, len(str(len(chunks))))
     return {f"b{k + 1:0{width}d}": chunk for k, chunk in enumerate(chunks)}
@@ -42,7 +47,7 @@ def make_batches(sample_ids, batch_size: int) -> dict[str, list[str]]:
 def manifest_text(rows) -> str:
     """The manifest (CSV text) of sample-sheet rows (``ringid.jobs.sheets.SampleRow``).
 
-    The voltage is written with ``%g``, exactly as the one-sample rule passes it on its command line.
+    The voltage is written with ``%g``, as ``ringid measure --voltage-kv`` would take it.
     """
     import io
 

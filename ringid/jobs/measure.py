@@ -307,12 +307,12 @@ def _overview(d: Path, rec: SampleRecord, rows, result, library) -> None:
         if ph is None:
             continue
         if hasattr(ph, "d_angstrom"):
-            refs.append((phase, ph, refined.get("dilation", 1.0)))
+            refs.append((phase, ph, refined.dilation))
         else:  # _PhaseArrays of a LibraryIndex: rebuild a minimal PhaseRings view
             from ringid.core.model import PhaseRings
 
             refs.append((phase, PhaseRings(phase, 10.0 / ph.g, ph.intensity, np.ones(len(ph.g), int), ph.hkl,
-                                           np.zeros(len(ph.g), bool)), refined.get("dilation", 1.0)))
+                                           np.zeros(len(ph.g), bool)), refined.dilation))
     try:
         thumb = np.load(d / "thumbnail.npy")
     except (OSError, ValueError):

@@ -1,12 +1,16 @@
-# Used instead of sample.smk and identify.smk when batch_size > 1: the samples, in sorted id
-# order, are cut into consecutive batches of batch_size (ringid.jobs.batch.make_batches), and each batch
-# is ONE image job and ONE identification job, each running its samples one after another in one
-# interpreter. Per-sample files are exactly those of the one-sample rules.
-# INPUTS: per batch, its images and calibration records
-# OUTPUTS: samples/{sample}/... of every sample of the batch
+# The per-sample stages. The samples, in sorted id order, are cut into consecutive batches of
+# batch_size (ringid.jobs.batch.make_batches; a batch of one is named after its sample), and each
+# batch is ONE image job and ONE identification job, each running its samples one after another in
+# one interpreter. Per-sample files do not depend on batch_size.
+# INPUTS: per batch, its images and calibration records (image job); its measured samples and the
+#   library index (identification job)
+# OUTPUTS: samples/{sample}/{measured_rings.csv, profile.csv, thumbnail.npy, sample.json} (image job),
+#   samples/{sample}/{phases.csv, rings.csv, identification.json, overview.png} (identification job)
 # A killed batch job is redone whole (--rerun-incomplete); a failed sample is recorded, not raised.
 # The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
-# note, voltage or membership reruns that batch only, and no extra job writes a file for it.
+# note, voltage or membership reruns that batch only, and no extra job writes a file for it. A
+# rebuilt library reruns the identification jobs only. Both jobs of a batch are in the group
+# "per_batch": on a cluster they can share one scheduler job (--group-components per_batch=N).
 
 from ringid.jobs.batch import make_batches, manifest_text
 from ringid.jobs.measure import SAMPLE_FILES
@@ -33,8 +37,10 @@ for _batch, _members in BATCHES.items():
             manifest=manifest_text(SAMPLES[s] for s in _members),
             calibrations=f"{RESULTS}/calibrations",
             samples=f"{RESULTS}/samples",
-            max_pixels=config.get("image", {}).get("max_pixels", 67108864),
+            max_pixels=config["image"]["max_pixels"],
             extra=image_options(),
+        group:
+            "per_batch"
         threads: 1
         resources:
             mem_mb=mem("image"),  # one image at a time: the one-sample figure
@@ -62,6 +68,8 @@ for _batch, _members in BATCHES.items():
             window_standard=config["identify"]["dilation_window_standard"],
             window_nominal=config["identify"]["dilation_window_nominal"],
             false_identification_rate=config["identify"]["false_identification_rate"],
+        group:
+            "per_batch"
         threads: 1
         resources:
             mem_mb=mem("cheap"),

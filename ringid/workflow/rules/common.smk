@@ -31,14 +31,6 @@ wildcard_constraints:
     phase=r"[^/]+",
 
 
-def sample_image(wildcards):
-    return SAMPLES[wildcards.sample].image
-
-
-def sample_calibration(wildcards):
-    return f"{RESULTS}/calibrations/{SAMPLES[wildcards.sample].calibration}.json"
-
-
 def calibration_inputs(wildcards):
     row = CALIBRATIONS[wildcards.calibration]
     if row.kind == "standard":
@@ -47,37 +39,23 @@ def calibration_inputs(wildcards):
 
 
 def mem(kind):
-    return config.get("resources", {}).get(f"{kind}_mem_mb", 1500 if kind == "image" else 500)
+    """Memory (MB) declared per job of kind image or cheap (config section resources)."""
+    return config["resources"][f"{kind}_mem_mb"]
 
 
 def runtime(kind):
-    return config.get("resources", {}).get(f"{kind}_runtime_min", 10 if kind == "image" else 5)
-
-
-def sample_options(sample):
-    """Optional per-sample arguments of `ringid measure`, shell-quoted (notes are free text)."""
-    import math
-    import shlex
-
-    row = SAMPLES[sample]
-    out = [f"--calibration-id {shlex.quote(row.calibration)}"]
-    if row.note:
-        out.append(f"--note {shlex.quote(row.note)}")
-    if math.isfinite(row.voltage_kv):
-        out.append(f"--voltage-kv {row.voltage_kv:g}")
-    return " ".join(part for part in [*out, image_options()] if part)
+    """Run time (min) declared per job of kind image or cheap (config section resources)."""
+    return config["resources"][f"{kind}_runtime_min"]
 
 
 def image_options():
     """The image-job options from the config's image section, shell-quoted (the same for every sample)."""
     import shlex
 
-    opts = config.get("image", {})
-    out = []
-    if opts.get("min_ring_g_per_nm") is not None:
-        out.append(f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}")
-    if opts.get("saturation_level") is not None:
+    opts = config["image"]
+    out = [f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}"]
+    if opts["saturation_level"] is not None:
         out.append(f"--saturation-level {float(opts['saturation_level'])}")
-    if opts.get("user_mask"):
+    if opts["user_mask"]:
         out.append(f"--mask {shlex.quote(str(opts['user_mask']))}")
     return " ".join(out)

@@ -12,8 +12,8 @@ rule library_phase:
     log:
         f"{RESULTS}/logs/library/{{phase}}.log",
     params:
-        d_min=config.get("library", {}).get("d_min_angstrom", 0.5),
-        tol=config.get("library", {}).get("merge_tolerance", 1e-4),
+        d_min=config["library"]["d_min_angstrom"],
+        tol=config["library"]["merge_tolerance"],
     threads: 1
     resources:
         mem_mb=mem("cheap"),
