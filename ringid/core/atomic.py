@@ -81,6 +81,27 @@ def _json_default(o):
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
 
 
+def format_cell(x, spec: str = ".6g") -> str:
+    """One table cell: "" for None or NaN, ``inf``/``-inf``, ``true``/``false`` for booleans,
+    integers as they are, other numbers with the format ``spec`` (e.g. ``.6g``, ``.3f``), text as it is."""
+    import math
+
+    import numpy as np
+
+    if x is None or isinstance(x, str):
+        return "" if x is None else x
+    if isinstance(x, (bool, np.bool_)):
+        return "true" if x else "false"
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    x = float(x)
+    if math.isnan(x):
+        return ""
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    return format(x, spec)
+
+
 def write_csv(path: str | os.PathLike, header: list[str], rows) -> None:
     """Write a CSV table atomically with the stdlib writer (no pandas on cheap paths)."""
     import csv

@@ -165,7 +165,7 @@ class CalibrationRecord:
             ellipse_angle_deg=_float(obj, "ellipse_angle_deg", 0.0, path),
             wavelength_angstrom=_float(obj, "wavelength_angstrom", path=path),
             standard=str(obj.get("standard", "")), standard_source=str(obj.get("standard_source", "")),
-            image=str(obj.get("image", "")), n_rings_assigned=int(obj.get("n_rings_assigned") or len(rings)),
+            image=str(obj.get("image", "")), n_rings_assigned=int(obj.get("n_rings_assigned", len(rings)) or 0),
             rings=rings, instrument=_instrument(obj.get("instrument_fwhm")),
             unassigned_rings_g_per_nm=tuple(float(g) for g in obj.get("unassigned_rings_g_per_nm") or ()),
             flags=tuple(obj.get("flags") or ()), notes=tuple(obj.get("notes") or ()),

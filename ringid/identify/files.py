@@ -49,18 +49,6 @@ PHASES_COLUMNS = [
 ASSIGNMENT_COLUMNS = ["phase", "hkl", "double_diffraction", "d_calc_angstrom"]
 
 
-def _fmt(x, digits=6) -> str:
-    if isinstance(x, (bool, np.bool_)):
-        return "true" if x else "false"
-    if isinstance(x, (int, np.integer)):
-        return str(int(x))
-    if isinstance(x, float) and not math.isfinite(x):
-        return ""
-    if isinstance(x, (float, np.floating)):
-        return f"{x:.{digits}g}"
-    return str(x)
-
-
 def _round_sig(x: float, digits: int = 4) -> float | None:
     """x to ``digits`` significant digits for JSON (None when not finite)."""
     return float(f"{x:.{digits}g}") if math.isfinite(x) else None
@@ -69,15 +57,16 @@ def _round_sig(x: float, digits: int = 4) -> float | None:
 def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRings, result: Identification,
                   settings: IdentifySettings, provenance: dict | None = None) -> None:
     """Write ``phases.csv``, ``rings.csv`` (input rows + assignment) and ``identification.json``."""
-    from ringid.core.atomic import write_csv, write_json
+    from ringid.core.atomic import format_cell, write_csv, write_json
 
     out = Path(out_dir)
     write_csv(out / "phases.csv", PHASES_COLUMNS, (
-        [_fmt(r + 1), c.phase, _fmt(c.score, 5), _fmt(c.confidence, 4), _fmt(c.in_answer),
-         _fmt(c.dilation, 7), _fmt(c.dilation_sigma, 3), _fmt(c.n_matched), _fmt(c.n_missing_strong),
-         c.missing_strong_rings, _fmt(c.explained_intensity_share, 4),
-         _fmt(c.false_identification_probability, 3), _fmt(c.free_dilation, 7), _fmt(c.free_dilation_sigma, 3),
-         _fmt(c.lattice_mismatch)]
+        [format_cell(r + 1), c.phase, format_cell(c.score, ".5g"), format_cell(c.confidence, ".4g"),
+         format_cell(c.in_answer), format_cell(c.dilation, ".7g"), format_cell(c.dilation_sigma, ".3g"),
+         format_cell(c.n_matched), format_cell(c.n_missing_strong), c.missing_strong_rings,
+         format_cell(c.explained_intensity_share, ".4g"), format_cell(c.false_identification_probability, ".3g"),
+         format_cell(c.free_dilation, ".7g"), format_cell(c.free_dilation_sigma, ".3g"),
+         format_cell(c.lattice_mismatch)]
         for r, c in enumerate(result.candidates)
     ))
     # rings.csv: every input row (halos too) with its assignment; sharp rings in input order
@@ -94,7 +83,7 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
     for k, r in enumerate(rows):
         asg = by_row.get(k)
         extra = (
-            [asg.phase, asg.hkl, _fmt(asg.double_diffraction), _fmt(asg.d_calc_angstrom, 7)]
+            [asg.phase, asg.hkl, format_cell(asg.double_diffraction), format_cell(asg.d_calc_angstrom, ".7g")]
             if asg
             else ["", "", "", ""]
         )

@@ -18,7 +18,7 @@ import math
 import os
 from pathlib import Path
 
-from ringid.core.atomic import write_csv
+from ringid.core.atomic import format_cell, write_csv
 from ringid.core.errors import RingidError
 from ringid.core.records import SampleRecord, read_sample_record
 
@@ -43,12 +43,15 @@ def _load_json(path: Path) -> dict:
 
 
 def _num(x, fmt: str) -> str:
-    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+    """A number (or a number read from a table as text) as a report cell with the format ``fmt``;
+    "" when missing or not finite (the report shows no inf), text that is not a number as it is."""
+    if x is None:
         return ""
     try:
-        return format(float(x), fmt)
+        x = float(x)
     except (TypeError, ValueError):
         return str(x)
+    return format_cell(x, fmt) if math.isfinite(x) else ""
 
 
 def load_sample_record(sample: str, sample_dir: Path) -> SampleRecord:
