@@ -62,7 +62,8 @@ def test_calibration_record_round_trip_and_geometry(tmp_path):
     ring = CalibrationRing("1 1 1", 2.3548, 4.2466, 4.2470, 0.0004, 2.3546, 0.0094, 0.031)
     rec = CalibrationRecord("c1", voltage_kv=200.0, camera_constant_A_px=1003.2, camera_constant_sigma_A_px=0.1,
                             center_x_px=511.5, center_y_px=512.0, center_sigma_px=0.01, ellipticity=0.004,
-                            ellipse_angle_deg=31.0, wavelength_angstrom=0.025079, standard="Au", rings=(ring,), n_rings_assigned=1,
+                            ellipse_angle_deg=31.0, wavelength_angstrom=0.025079, standard="Au", rings=(ring,),
+                            n_rings_assigned=1,
                             instrument=InstrumentProfile(0.03, 0.001, 0.4, 4.2, 12.0), flags=("x",), notes=("n",))
     write_calibration_record(tmp_path / "c1.json", rec)
     back = read_calibration_record(tmp_path / "c1.json")
