@@ -414,7 +414,8 @@ GRID_CHUNK_ELEMENTS = 2_000_000  # (rows × dilations × rings) evaluated at onc
 
 
 def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alphas) -> _RowScores:
-    """Best single-phase fit of every row of the index, batched over rows with numpy."""
+    """Best single-phase fit of every row of the index, batched over rows with numpy: the grid
+    search over the window, the least-squares dilation, then the intensity and missing-ring terms."""
     n_ph, n_obs = lib.n_rows, len(obs)
     u = -settings.unexplained_ring_cost
     window = settings.dilation_window
@@ -426,15 +427,42 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
     w_norm = lib.sqrt_intensity / np.where(wsum > 0, wsum, np.inf)[lib.phase_of]
     rho0 = 1.0 / (g_hi - g_lo)
 
-    # grid search over the window, in chunks of rows; a decoy that cannot enter an answer whatever
-    # its dilation (too few rings within reach, or too low a score even if every one matched) only
-    # needs to be known as such
+    k, ev_k, near_k, pos_k = _grid_search(lib, obs, tau, v, u, settings, w_norm, rho0, alphas)
+    fit = _refine_dilations(lib, obs, tau, v, u, window, sigma_alpha, w_norm, rho0, alphas, k, ev_k, near_k, pos_k)
+    alpha, alpha_sigma, free, free_sigma, ev1, near1 = fit
+    matched = ev1 >= 0
+    n_m = matched.sum(axis=1)
+    prior_term = -np.log(alpha) ** 2 / (2 * sigma_alpha**2)
+    scale, inten_term = _intensity_terms(lib, obs, near1, matched, n_m, settings)
+    missing_term, strong, n_missing_top = _missing_terms(lib, obs, tau, settings, g_lo, g_hi, a_lim, alpha, near1,
+                                                         matched, n_m, scale)
+
+    total_area = obs.area.sum()
+    share = (np.where(matched, obs.area, 0.0).sum(axis=1) / total_area) if n_obs else np.zeros(n_ph)
+    phase_terms = prior_term + missing_term + inten_term
+    score = (v * np.maximum(u, ev1)).sum(axis=1) + phase_terms - u * v.sum()
+
+    outside = np.abs(np.log(free)) - math.log1p(window)
+    mismatch = (n_m >= 2) & (outside > 0) & (outside > settings.lattice_mismatch_sigma * free_sigma)
+    eligible = ((score >= settings.accept_score) & (n_m >= settings.min_matched_rings)
+                & (n_missing_top <= settings.max_missing_strong)
+                & ~mismatch)
+    return _RowScores(score, alpha, alpha_sigma, free, free_sigma, ev1, near1, phase_terms, n_m, strong, n_missing_top,
+                      share, scale, mismatch, eligible)
+
+
+def _grid_search(lib: LibraryIndex, obs, tau, v, u, settings, w_norm, rho0, alphas):
+    """The best dilation of the grid ``alphas`` per row (its index, evidence, nearest rings, posterior),
+    in chunks of rows. A decoy that cannot enter an answer whatever its dilation (too few rings
+    within reach, or too low a score even if every one matched) only needs to be known as such."""
+    n_ph, n_obs = lib.n_rows, len(obs)
+    sigma_alpha = settings.dilation_sigma or settings.dilation_window / 2
     prior = -(np.log(alphas) ** 2) / (2 * sigma_alpha**2)
     k = np.full(n_ph, int(np.argmax(prior)))
     ev_k = np.full((n_ph, n_obs), -np.inf)
     near_k = np.full((n_ph, n_obs), -1, dtype=int)
     pos_k = np.full(n_ph, -np.inf)
-    n_reach, bound = _reach(lib, obs.g_per_nm, tau, v, u, w_norm, rho0, a_min, a_max)
+    n_reach, bound = _reach(lib, obs.g_per_nm, tau, v, u, w_norm, rho0, alphas.min(), alphas.max())
     hopeless = (np.arange(n_ph) >= len(lib.phases)) & (
         (n_reach < settings.min_matched_rings) | (bound < settings.accept_score)
     )
@@ -448,8 +476,13 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
         kk = np.argmax(pos, axis=1)
         r = np.arange(len(kk))
         k[rows], ev_k[rows], near_k[rows], pos_k[rows] = kk, ev[r, kk], nearest[r, kk], pos[r, kk]
+    return k, ev_k, near_k, pos_k
 
-    # weighted least-squares dilation from the matched rings
+
+def _refine_dilations(lib: LibraryIndex, obs, tau, v, u, window, sigma_alpha, w_norm, rho0, alphas, k, ev_k, near_k,
+                      pos_k):
+    """Weighted least-squares dilation from the rings matched at the grid's best, kept where it scores
+    at least as well: (dilation, σ, free dilation, σ, evidence, nearest rings) per row."""
     matched = ev_k >= 0
     g_lib = np.where(matched, lib.g[np.clip(near_k, 0, None)], 0.0)
     n_m = matched.sum(axis=1)
@@ -472,13 +505,13 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
     alpha = np.where(keep_grid, alphas[k], refined)
     ev1 = np.where(keep_grid[:, None], ev_k, ev_r)
     near1 = np.where(keep_grid[:, None], near_k, near_r)
-    matched = ev1 >= 0
-    n_m = matched.sum(axis=1)
-    prior_term = -np.log(alpha) ** 2 / (2 * sigma_alpha**2)
+    return alpha, alpha_sigma, free, free_sigma, ev1, near1
 
-    # intensities: the scale is the matched rings' observed area over their predicted intensity
-    # (ratio of sums), so chance matches of a phase's weak rings cannot make its absent strong
-    # rings look undetectable; then the weak agreement term
+
+def _intensity_terms(lib: LibraryIndex, obs, near1, matched, n_m, settings):
+    """The intensity scale per row (the matched rings' observed area over their predicted intensity,
+    a ratio of sums, so chance matches of a phase's weak rings cannot make its absent strong rings
+    look undetectable) and the weak intensity-agreement term."""
     lib_i = lib.intensity[np.clip(near1, 0, None)]
     area_sum = np.where(matched, obs.area[None, :], 0.0).sum(axis=1)
     pred_sum = np.where(matched, lib_i, 0.0).sum(axis=1)
@@ -488,9 +521,15 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
         ratio = np.where(matched, np.log(obs.area[None, :] / lib_i), np.nan)
     resid = (ratio - log_scale[:, None]) / settings.intensity_sigma_ln
     inten_term = np.where(n_m > 1, -0.5 * settings.intensity_weight * np.nansum(resid**2, axis=1), 0.0)
-    scale = np.exp(log_scale)
+    return np.exp(log_scale), inten_term
 
-    # missing rings: visible allowed rings neither matched nor hidden under a matched ring
+
+def _missing_terms(lib: LibraryIndex, obs, tau, settings, g_lo, g_hi, a_lim, alpha, near1, matched, n_m, scale):
+    """The missing-ring term per row (visible allowed rings neither matched nor hidden under a matched
+    ring, weighted by how surely they would have been detected), the flat mask of the strong ones,
+    and how many of each row's strong visible rings are missing."""
+    n_ph = lib.n_rows
+    any_m = n_m > 0
     visible = _interval_mask(lib, g_lo * alpha, g_hi * alpha)
     win = np.maximum(obs.fwhm_per_nm, 3 * tau)
     lo = np.where(matched, (obs.g_per_nm - win) * alpha[:, None], np.inf)
@@ -504,19 +543,7 @@ def _score_rows(lib: LibraryIndex, obs, tau, v, settings, g_lo, g_hi, a_lim, alp
     missing_term = np.bincount(lib.phase_of[miss], weights=np.log1p(-p_det[miss]), minlength=n_ph)
     strong = miss & (p_det > 0.5 * settings.max_detection_probability)
     n_missing_top = _missing_strong_rings(lib, visible, strong, n_ph, settings.strong_ring_fraction)
-
-    total_area = obs.area.sum()
-    share = (np.where(matched, obs.area, 0.0).sum(axis=1) / total_area) if n_obs else np.zeros(n_ph)
-    phase_terms = prior_term + missing_term + inten_term
-    score = (v * np.maximum(u, ev1)).sum(axis=1) + phase_terms - u * v.sum()
-
-    outside = np.abs(np.log(free)) - math.log1p(window)
-    mismatch = (n_m >= 2) & (outside > 0) & (outside > settings.lattice_mismatch_sigma * free_sigma)
-    eligible = ((score >= settings.accept_score) & (n_m >= settings.min_matched_rings)
-                & (n_missing_top <= settings.max_missing_strong)
-                & ~mismatch)
-    return _RowScores(score, alpha, alpha_sigma, free, free_sigma, ev1, near1, phase_terms, n_m, strong, n_missing_top,
-                      share, scale, mismatch, eligible)
+    return missing_term, strong, n_missing_top
 
 
 REACH_SIGMA = 8.0  # library rings further than this many τ from an observed ring add nothing to its evidence
