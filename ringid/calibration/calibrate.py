@@ -247,22 +247,21 @@ def fit_camera_constant(points, ring_standard_g_per_A, geometry: Geometry, camer
     k, cx, cy, eps, ang = unpack(p_full)
     sig_k = math.sqrt(max(cov[0, 0], 0))
     sig_c = math.sqrt(max(0.5 * (cov[1, 1] + cov[2, 2]), 0))
-    sig_e = sig_a = math.nan
-    if fit_ellipse:
-        # ε = |(p, q)|, θ = atan2(q, p)/2: propagate the 2×2 block
-        pq = p_full[3:5]
-        sub = cov[3:5, 3:5]
-        if eps > 0:
-            ge = pq / eps
-            ga = np.array([-pq[1], pq[0]]) / eps**2 * 0.5
-            sig_e = math.sqrt(max(ge @ sub @ ge, 0))
-            sig_a = math.degrees(math.sqrt(max(ga @ sub @ ga, 0)))
-        else:
-            sig_e = math.sqrt(max(0.5 * np.trace(sub), 0))
+    sig_e, sig_a = _ellipse_sigmas(p_full[3:5], cov[3:5, 3:5], eps) if fit_ellipse else (math.nan, math.nan)
     geom = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=(ang + 90.0) % 180.0 - 90.0,
                     camera_constant_A_px=k, voltage_kv=geometry.voltage_kv, center_sigma_px=sig_c)
     resid_px = residual(p_full, np.ones(x.size, bool)) * sig
     return geom, {"camera_constant": sig_k, "ellipticity": sig_e, "ellipse_angle_deg": sig_a}, resid_px, keep
+
+
+def _ellipse_sigmas(pq: np.ndarray, cov_pq: np.ndarray, eps: float) -> tuple[float, float]:
+    """σ of ε and of θ (°) from the covariance of (p, q) = (ε cos 2θ, ε sin 2θ): ε = |(p, q)|,
+    θ = atan2(q, p)/2, propagated to first order (θ undefined at ε = 0: NaN)."""
+    if eps > 0:
+        ge = pq / eps
+        ga = np.array([-pq[1], pq[0]]) / eps**2 * 0.5
+        return math.sqrt(max(ge @ cov_pq @ ge, 0)), math.degrees(math.sqrt(max(ga @ cov_pq @ ga, 0)))
+    return math.sqrt(max(0.5 * np.trace(cov_pq), 0)), math.nan
 
 
 def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
@@ -360,18 +359,9 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
                      voltage_kv=float(voltage_kv))
     geom, sig, resid_px, keep = fit_camera_constant(gfit.points, g_std, start, assignment.camera_constant_A_px)
 
-    # per-ring observed g: mean sector radius at the final geometry over K
     k = geom.camera_constant_A_px
     obs = assignment.observed_index
-    ring_idx = gfit.points.ring_index[np.isfinite(g_std[gfit.points.ring_index])]
-    g_obs = np.empty(obs.size)
-    g_sig = np.empty(obs.size)
-    for n, kk in enumerate(obs):
-        sel = (ring_idx == kk) & keep
-        r_true = k * g_std[kk]
-        rr = r_true + resid_px[sel]
-        g_obs[n] = 10.0 * rr.mean() / k
-        g_sig[n] = 10.0 * (rr.std(ddof=1) / math.sqrt(max(sel.sum(), 1)) if sel.sum() > 1 else math.nan) / k
+    g_obs, g_sig = _observed_ring_g(gfit.points.ring_index, g_std, obs, k, resid_px, keep)
 
     profile = integrate_profile(data, mask, geom, with_cake=False)
     fwhm_guess = gfit.ring_fwhm_px[obs] * 10.0 / k
@@ -396,6 +386,21 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
         notes=tuple(notes))
 
 
+def _observed_ring_g(ring_index, g_std, observed, k, resid_px, keep) -> tuple[np.ndarray, np.ndarray]:
+    """Observed g (1/nm) of each assigned ring and its σ: the mean sector radius at the final
+    geometry over K, from the kept sector points (``resid_px``: their radial residuals, px)."""
+    ring_idx = ring_index[np.isfinite(g_std[ring_index])]
+    g_obs = np.empty(observed.size)
+    g_sig = np.empty(observed.size)
+    for n, kk in enumerate(observed):
+        sel = (ring_idx == kk) & keep
+        r_true = k * g_std[kk]
+        rr = r_true + resid_px[sel]
+        g_obs[n] = 10.0 * rr.mean() / k
+        g_sig[n] = 10.0 * (rr.std(ddof=1) / math.sqrt(max(sel.sum(), 1)) if sel.sum() > 1 else math.nan) / k
+    return g_obs, g_sig
+
+
 def _fit_fwhm_line(g, fwhm) -> tuple[float, float]:
     ok = np.isfinite(fwhm) & np.isfinite(g)
     if ok.sum() >= 3:
@@ -411,13 +416,10 @@ def calibrate_image(image_path, standard_d_angstrom, *, voltage_kv: float, stand
                     standard_source: str = "", user_mask_path=None, frame: int | None = None,
                     saturation_level: float | None = None) -> Calibration:
     """Load, mask and calibrate one image of a standard (see :func:`calibrate_pattern`)."""
-    from ringid.image.load import load_image
-    from ringid.image.mask import build_mask, load_user_mask
+    from ringid.image.stage import load_and_mask
 
-    img = load_image(image_path, frame=frame)
-    user = load_user_mask(user_mask_path, img.shape) if user_mask_path else None
-    level = img.saturation_level if saturation_level is None else saturation_level
-    masks = build_mask(img.data, invalid=img.invalid, saturation_level=level, user_mask=user)
+    img, masks = load_and_mask(image_path, frame=frame, saturation_level=saturation_level,
+                               user_mask_path=user_mask_path)
     cal = calibrate_pattern(img.data, masks.mask, standard_d_angstrom, voltage_kv=voltage_kv,
                             standard_intensity=standard_intensity, standard_hkl=standard_hkl,
                             nominal_camera_constant_A_px=nominal_camera_constant_A_px,

@@ -198,17 +198,7 @@ def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: floa
     r = np.sqrt(xx * xx + yy * yy)
     rb = (r / block).astype(np.int64)
     ok = frac > 0.5
-    # smooth over enough tiles that the dimmest (outer) region holds ≥ 12 counts per window,
-    # so that "dark" is not decided by Poisson zeros; at most 16 px so that a rod stays resolved
-    outer = ok & (r >= np.percentile(r[ok], 80)) if ok.any() else ok
-    level = float(small[outer].mean()) if outer.any() else 0.0
-    n_s = int(math.ceil(math.sqrt(12.0 / max(level * block * block, 1e-6))))
-    n_s = int(min(max(n_s, 1), max(16 // block, 1)))
-    if n_s > 1:
-        w = ok.astype(np.float32)
-        num = ndimage.uniform_filter(np.where(ok, small, 0).astype(np.float32), n_s, mode="constant")
-        den = ndimage.uniform_filter(w, n_s, mode="constant")
-        small = np.where(den > 0, num / np.maximum(den, 1e-6), 0).astype(np.float32)
+    small, n_s = _smooth_dim_tiles(small, ok, r, block)
     nb = int(rb.max()) + 1
     med = _binned_quantile(rb[ok], small[ok].astype(np.float64), nb, 0.5)
     # where only a short arc of an annulus lies inside the image (corners) the rod can be
@@ -242,10 +232,34 @@ def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: floa
     shadow_small = ndimage.binary_fill_holes(shadow_small)
     # a margin of one tile plus half the smoothing window covers the penumbra and the cut tiles
     shadow_small = ndimage.binary_dilation(shadow_small, structure=np.ones((3, 3), bool), iterations=1 + n_s // 2)
-    full = np.zeros(data.shape, bool)
-    up = np.repeat(np.repeat(shadow_small, block, axis=0), block, axis=1)
+    return _tiles_to_pixels(shadow_small, block, data.shape)
+
+
+def _smooth_dim_tiles(small: np.ndarray, ok: np.ndarray, r: np.ndarray, block: int) -> tuple[np.ndarray, int]:
+    """The tile means smoothed over enough tiles that the dimmest (outer) region holds ≥ 12 counts
+    per window, so that "dark" is not decided by Poisson zeros; at most 16 px wide so that a rod
+    stays resolved. Returns the smoothed tiles and the window width (tiles)."""
+    from scipy import ndimage
+
+    outer = ok & (r >= np.percentile(r[ok], 80)) if ok.any() else ok
+    level = float(small[outer].mean()) if outer.any() else 0.0
+    n_s = int(math.ceil(math.sqrt(12.0 / max(level * block * block, 1e-6))))
+    n_s = int(min(max(n_s, 1), max(16 // block, 1)))
+    if n_s > 1:
+        w = ok.astype(np.float32)
+        num = ndimage.uniform_filter(np.where(ok, small, 0).astype(np.float32), n_s, mode="constant")
+        den = ndimage.uniform_filter(w, n_s, mode="constant")
+        small = np.where(den > 0, num / np.maximum(den, 1e-6), 0).astype(np.float32)
+    return small, n_s
+
+
+def _tiles_to_pixels(tiles: np.ndarray, block: int, shape: tuple[int, int]) -> np.ndarray:
+    """A mask of block × block tiles on the pixel grid of ``shape``; rows and columns beyond the
+    last whole tile copy their neighbour."""
+    ny, nx = shape
+    full = np.zeros(shape, bool)
+    up = np.repeat(np.repeat(tiles, block, axis=0), block, axis=1)
     full[: up.shape[0], : up.shape[1]] = up
-    # rows/columns beyond the last whole tile copy their neighbour
     if up.shape[0] < ny:
         full[up.shape[0]:, : up.shape[1]] = up[-1:, :]
     if up.shape[1] < nx:

@@ -47,7 +47,7 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     path : path-like
         The pattern (TIFF or .npy).
     calibration : Geometry
-        From :func:`ringid.calibration.record.read_calibration_record` or a known/nominal constant:
+        The ``geometry`` of a :class:`ringid.core.records.CalibrationRecord` (standard, known or nominal):
         K (Å·px, required), ε, θ, voltage; its centre is only a fallback.
     fit_ellipse : bool
         Fit the sample's own ε and θ instead of inheriting them (e.g. when the
@@ -67,14 +67,39 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     """
     import time
 
-    from ringid.image.center import coarse_center, refine_geometry, refine_sample_center
     from ringid.core.errors import RingidError
-    from ringid.image.load import DEFAULT_MAX_BYTES, DEFAULT_MAX_PIXELS, load_image
-    from ringid.image.mask import build_mask, load_user_mask
 
     if not (calibration.camera_constant_A_px > 0):
         raise RingidError(path, "the calibration gives no camera constant")
     t = {}
+    img, masks = load_and_mask(path, frame=frame, saturation_level=saturation_level, user_mask_path=user_mask_path,
+                               max_pixels=max_pixels, max_bytes=max_bytes, timings_s=t)
+    t0 = time.perf_counter()
+    g, fit, flags, notes = _centre(img, masks, calibration, fit_ellipse, path)
+    geometry = Geometry(center_x_px=g.center_x_px, center_y_px=g.center_y_px, ellipticity=g.ellipticity,
+                        ellipse_angle_deg=g.ellipse_angle_deg, camera_constant_A_px=calibration.camera_constant_A_px,
+                        voltage_kv=calibration.voltage_kv, center_sigma_px=g.center_sigma_px)
+    t["center"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    profile = integrate_profile(img.data, masks.mask, geometry, g_step_per_nm=g_step_per_nm, n_azimuth=n_azimuth,
+                                with_cake=with_cake)
+    t["integrate"] = time.perf_counter() - t0
+    return ImageResult(geometry=geometry, profile=profile, fit=fit, mask=masks, path=str(path), flags=tuple(flags),
+                       notes=tuple(img.notes) + tuple(masks.notes) + tuple(notes), warnings=tuple(img.warnings),
+                       timings_s=t, data=img.data)
+
+
+def load_and_mask(path, *, frame: int | None = None, saturation_level: float | None = None, user_mask_path=None,
+                  max_pixels: int | None = None, max_bytes: int | None = None, timings_s: dict | None = None):
+    """Load a pattern and build its mask: ``(LoadedImage, MaskResult)``; a pattern with no usable
+    pixel raises RingidError saying why. ``timings_s`` (if given) gets ``load`` and ``mask`` (s)."""
+    import time
+
+    from ringid.core.errors import RingidError
+    from ringid.image.load import DEFAULT_MAX_BYTES, DEFAULT_MAX_PIXELS, load_image
+    from ringid.image.mask import build_mask, load_user_mask
+
+    t = {} if timings_s is None else timings_s
     t0 = time.perf_counter()
     img = load_image(path, frame=frame, max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
                      max_bytes=max_bytes or DEFAULT_MAX_BYTES)
@@ -86,9 +111,15 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     t["mask"] = time.perf_counter() - t0
     if masks.mask.all():
         raise RingidError(path, _nothing_usable(img, level))
-    t0 = time.perf_counter()
-    flags: list[str] = []
-    notes = list(img.notes) + list(masks.notes)
+    return img, masks
+
+
+def _centre(img, masks, calibration: Geometry, fit_ellipse: bool, path):
+    """The sample's centre (and, with ``fit_ellipse``, its own ellipse): ``(Geometry, fit or None,
+    flags, notes)``. A pattern without a ring to centre on falls back to point symmetry."""
+    from ringid.core.errors import RingidError
+    from ringid.image.center import coarse_center, refine_geometry, refine_sample_center
+
     try:
         if fit_ellipse:
             fit = refine_geometry(img.data, masks.mask, center_guess=masks.rough_center_xy,
@@ -97,29 +128,15 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
         else:
             fit = refine_sample_center(img.data, masks.mask, calibration, center_guess=masks.rough_center_xy,
                                        path=path)
-        g = fit.geometry
-        flags += list(fit.flags)
-        notes += list(fit.notes)
+        return fit.geometry, fit, list(fit.flags), list(fit.notes)
     except RingidError as exc:
         if "ring" not in exc.problem:
             raise
         _refuse_centre_outside(img.data, masks.mask, path)
         cc = coarse_center(img.data, masks.mask)
-        fit = None
         g = Geometry(center_x_px=cc.center_x_px, center_y_px=cc.center_y_px, ellipticity=calibration.ellipticity,
                      ellipse_angle_deg=calibration.ellipse_angle_deg, center_sigma_px=float(cc.block_px) / 2)
-        flags.append("center_from_symmetry")
-        notes.append(f"no ring to centre on ({exc.problem}); centre from point symmetry")
-    geometry = Geometry(center_x_px=g.center_x_px, center_y_px=g.center_y_px, ellipticity=g.ellipticity,
-                        ellipse_angle_deg=g.ellipse_angle_deg, camera_constant_A_px=calibration.camera_constant_A_px,
-                        voltage_kv=calibration.voltage_kv, center_sigma_px=g.center_sigma_px)
-    t["center"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    profile = integrate_profile(img.data, masks.mask, geometry, g_step_per_nm=g_step_per_nm, n_azimuth=n_azimuth,
-                                with_cake=with_cake)
-    t["integrate"] = time.perf_counter() - t0
-    return ImageResult(geometry=geometry, profile=profile, fit=fit, mask=masks, path=str(path), flags=tuple(flags),
-                       notes=tuple(notes), warnings=tuple(img.warnings), timings_s=t, data=img.data)
+        return g, None, ["center_from_symmetry"], [f"no ring to centre on ({exc.problem}); centre from point symmetry"]
 
 
 FALLOFF_AGREEMENT_MIN = 0.8  # blocks whose gradient points at the falloff centre (noise: ≈ 0.2–0.4, measured)

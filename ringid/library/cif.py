@@ -144,26 +144,7 @@ def read_crystal(path: str | os.PathLike) -> Crystal:
     import gemmi
 
     path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise RingidError(path, f"cannot read file ({exc.strerror or exc})") from None
-    if not raw.strip():
-        raise RingidError(path, "empty file")
-    if b"\x00" in raw:
-        raise RingidError(path, "not a CIF file (binary data)")
-    try:
-        raw.decode("utf-8")
-    except UnicodeDecodeError:
-        try:
-            raw.decode("latin-1")
-        except UnicodeDecodeError:  # pragma: no cover - latin-1 decodes any bytes
-            raise RingidError(path, "not a CIF file (not text)") from None
-    try:
-        doc = gemmi.cif.read_string(raw)
-    except (RuntimeError, ValueError) as exc:
-        raise RingidError(path, f"not a valid CIF: {_first_line(exc)}") from None
-
+    raw, doc = _read_document(path)
     warnings: list[str] = []
     blocks = [b for b in doc if b.find_value("_cell_length_a") is not None]
     if not len(doc):
@@ -219,6 +200,31 @@ def read_crystal(path: str | os.PathLike) -> Crystal:
         centring_vectors=centring,
         warnings=tuple(warnings),
     )
+
+
+def _read_document(path: Path):
+    """The file's bytes and its gemmi CIF document; unreadable, empty, binary or invalid raise RingidError."""
+    import gemmi
+
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise RingidError(path, f"cannot read file ({exc.strerror or exc})") from None
+    if not raw.strip():
+        raise RingidError(path, "empty file")
+    if b"\x00" in raw:
+        raise RingidError(path, "not a CIF file (binary data)")
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        try:
+            raw.decode("latin-1")
+        except UnicodeDecodeError:  # pragma: no cover - latin-1 decodes any bytes
+            raise RingidError(path, "not a CIF file (not text)") from None
+    try:
+        return raw, gemmi.cif.read_string(raw)
+    except (RuntimeError, ValueError) as exc:
+        raise RingidError(path, f"not a valid CIF: {_first_line(exc)}") from None
 
 
 def _first_line(exc: Exception) -> str:

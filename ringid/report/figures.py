@@ -68,37 +68,7 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
     fig.suptitle(title, fontsize=10, x=0.01, ha="left")
     ax_img.set_axis_off()
     if thumbnail is not None and thumbnail.size:
-        ax_img.imshow(thumbnail, cmap="magma", origin="upper", interpolation="nearest")
-        k, cx, cy = (math.nan,) * 3 if geometry is None else (
-            geometry.camera_constant_A_px, geometry.center_x_px, geometry.center_y_px)
-        if k and all(map(math.isfinite, (k, cx, cy))):
-            from matplotlib.patches import Ellipse
-
-            eps = geometry.ellipticity if math.isfinite(geometry.ellipticity) else 0.0
-            ang = geometry.ellipse_angle_deg if math.isfinite(geometry.ellipse_angle_deg) else 0.0
-            for r in rings:
-                try:
-                    g = float(r["g_per_nm"])
-                except (KeyError, ValueError):
-                    continue
-                radius = k * g / 10.0 / bin_px
-                a, b = radius / math.sqrt(1 - eps), radius * math.sqrt(1 - eps)
-                colour = "#7fdbff" if r.get("kind", "ring") == "halo" else "#ffffff"
-                ax_img.add_patch(
-                    Ellipse(
-                        ((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5),
-                        2 * a,
-                        2 * b,
-                        angle=ang,
-                        fill=False,
-                        lw=0.6,
-                        ec=colour,
-                        alpha=0.9,
-                        ls=(0, (2, 2)),
-                    )
-                )
-            ax_img.set_xlim(-0.5, thumbnail.shape[1] - 0.5)
-            ax_img.set_ylim(thumbnail.shape[0] - 0.5, -0.5)
+        _draw_thumbnail(ax_img, thumbnail, bin_px, geometry, rings)
     if profile and len(profile.get("g_per_nm", [])):
         g = np.asarray(profile["g_per_nm"], float)
         y = np.asarray(profile["intensity"], float)
@@ -118,25 +88,65 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
             ax.set_ylim(lo * 0.8, hi * 1.6)
         ax.set_xlim(g.min(), g.max())
         ymin, ymax = ax.get_ylim()
-        for n, (phase, rings_of_phase, dilation) in enumerate(references):
-            colour = PHASE_COLOURS[n % len(PHASE_COLOURS)]
-            gr = rings_of_phase.g_per_nm / dilation
-            keep = (gr >= g.min()) & (gr <= g.max()) & (~rings_of_phase.double_diffraction)
-            top = set(np.argsort(-rings_of_phase.intensity[keep])[:12].tolist())
-            frac = 0.05 + 0.25 * rings_of_phase.intensity[keep] / 100.0
-            # one collection for all ticks of a phase: x in data, y in axes units
-            ax.vlines(gr[keep], 0.0, frac, transform=ax.get_xaxis_transform(), colors=colour, lw=1.0, alpha=0.8)
-            for j, (gj, fj, hkl) in enumerate(zip(gr[keep], frac, np.array(rings_of_phase.hkl)[keep])):
-                if j in top:
-                    ax.text(gj, ymin * (ymax / ymin) ** (fj + 0.01), hkl.replace(" ", ""), rotation=90, fontsize=6,
-                            color=colour, ha="center", va="bottom")
-            ax.plot([], [], color=colour, lw=1.5, label=phase)
+        _draw_phase_ticks(ax, references, g, ymin, ymax)
         ax.legend(fontsize=7, loc="upper right", frameon=False)
     ax.set_xlabel("g = 1/d (1/nm)", fontsize=8)
     ax.set_ylabel("azimuthal mean (counts/px)", fontsize=8)
     ax.tick_params(labelsize=7)
     _save_small_png(fig, path)
     plt.close(fig)
+
+
+def _draw_thumbnail(ax_img, thumbnail: np.ndarray, bin_px: int, geometry: Geometry | None, rings) -> None:
+    """The log-scaled thumbnail with each ring of ``rings`` drawn as the ellipse it is on the detector."""
+    ax_img.imshow(thumbnail, cmap="magma", origin="upper", interpolation="nearest")
+    k, cx, cy = (math.nan,) * 3 if geometry is None else (
+        geometry.camera_constant_A_px, geometry.center_x_px, geometry.center_y_px)
+    if k and all(map(math.isfinite, (k, cx, cy))):
+        from matplotlib.patches import Ellipse
+
+        eps = geometry.ellipticity if math.isfinite(geometry.ellipticity) else 0.0
+        ang = geometry.ellipse_angle_deg if math.isfinite(geometry.ellipse_angle_deg) else 0.0
+        for r in rings:
+            try:
+                g = float(r["g_per_nm"])
+            except (KeyError, ValueError):
+                continue
+            radius = k * g / 10.0 / bin_px
+            a, b = radius / math.sqrt(1 - eps), radius * math.sqrt(1 - eps)
+            colour = "#7fdbff" if r.get("kind", "ring") == "halo" else "#ffffff"
+            ax_img.add_patch(
+                Ellipse(
+                    ((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5),
+                    2 * a,
+                    2 * b,
+                    angle=ang,
+                    fill=False,
+                    lw=0.6,
+                    ec=colour,
+                    alpha=0.9,
+                    ls=(0, (2, 2)),
+                )
+            )
+        ax_img.set_xlim(-0.5, thumbnail.shape[1] - 0.5)
+        ax_img.set_ylim(thumbnail.shape[0] - 0.5, -0.5)
+
+
+def _draw_phase_ticks(ax, references, g: np.ndarray, ymin: float, ymax: float) -> None:
+    """Ticks at the identified phases' ring positions (height by intensity), hkl on the 12 strongest."""
+    for n, (phase, rings_of_phase, dilation) in enumerate(references):
+        colour = PHASE_COLOURS[n % len(PHASE_COLOURS)]
+        gr = rings_of_phase.g_per_nm / dilation
+        keep = (gr >= g.min()) & (gr <= g.max()) & (~rings_of_phase.double_diffraction)
+        top = set(np.argsort(-rings_of_phase.intensity[keep])[:12].tolist())
+        frac = 0.05 + 0.25 * rings_of_phase.intensity[keep] / 100.0
+        # one collection for all ticks of a phase: x in data, y in axes units
+        ax.vlines(gr[keep], 0.0, frac, transform=ax.get_xaxis_transform(), colors=colour, lw=1.0, alpha=0.8)
+        for j, (gj, fj, hkl) in enumerate(zip(gr[keep], frac, np.array(rings_of_phase.hkl)[keep])):
+            if j in top:
+                ax.text(gj, ymin * (ymax / ymin) ** (fj + 0.01), hkl.replace(" ", ""), rotation=90, fontsize=6,
+                        color=colour, ha="center", va="bottom")
+        ax.plot([], [], color=colour, lw=1.5, label=phase)
 
 
 def _save_small_png(fig, path) -> None:
