@@ -53,6 +53,96 @@ class SimulatedPattern:
     settings: dict = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class PatternGeometry:
+    """Where the rings fall: image ``shape`` (ny, nx) px, centre (px; None for the image centre),
+    ε = 1 − b/a and major-axis angle (deg), camera constant K (Å·px) and voltage (kV)."""
+
+    shape: tuple[int, int]
+    center_x_px: float | None
+    center_y_px: float | None
+    ellipticity: float
+    ellipse_angle_deg: float
+    camera_constant_A_px: float
+    voltage_kv: float
+
+    def center(self) -> tuple[float, float]:
+        """Pattern centre (x, y) in px: the given one, or the image centre."""
+        ny, nx = self.shape
+        cx = (nx - 1) / 2.0 if self.center_x_px is None else float(self.center_x_px)
+        cy = (ny - 1) / 2.0 if self.center_y_px is None else float(self.center_y_px)
+        return cx, cy
+
+
+@dataclass(frozen=True)
+class RingSpec:
+    """Ring shape and strength: instrumental FWHM (1/nm), crystallite size (nm, None for none) and
+    Scherrer constant, grains per ring (None for smooth rings), texture strength and angle (deg),
+    area of the strongest ring (counts·nm⁻¹ per pixel)."""
+
+    instrument_fwhm_per_nm: float
+    crystallite_size_nm: float | None
+    scherrer_constant: float
+    n_grains: int | None
+    texture_strength: float
+    texture_angle_deg: float
+    ring_area_counts_per_nm: float
+
+    @property
+    def modulated(self) -> bool:
+        """True when the rings vary with azimuth (grain spots or texture)."""
+        return self.n_grains is not None or self.texture_strength != 0.0
+
+
+@dataclass(frozen=True)
+class DiffuseSpec:
+    """Diffuse background b·(g² + 0.3²)^(−n/2) plus a flat floor (counts), and an optional halo
+    I(g) (g in 1/nm) times ``halo_counts``."""
+
+    background_counts: float
+    background_exponent: float
+    floor_counts: float
+    halo: Callable[[np.ndarray], np.ndarray] | None
+    halo_counts: float
+
+
+@dataclass(frozen=True)
+class BeamSpec:
+    """Direct beam (Gaussian, σ in px) and beam stop (disc radius and rod width in px, rod angle in
+    deg, transmission 0–1)."""
+
+    direct_beam: bool
+    direct_beam_sigma_px: float
+    beam_stop: bool
+    beam_stop_radius_px: float
+    beam_stop_rod_width_px: float
+    beam_stop_angle_deg: float
+    beam_stop_transmission: float
+
+
+@dataclass(frozen=True)
+class DetectorSpec:
+    """Dose (scale of the expected counts), Poisson noise, hot and dead pixel fractions, output
+    dtype, saturation level (counts; None for the dtype's own) and random seed."""
+
+    dose: float
+    noise: bool
+    hot_pixel_fraction: float
+    dead_pixel_fraction: float
+    dtype: str
+    saturation_level: float | None
+    seed: int
+
+
+@dataclass(frozen=True)
+class PatternSpec:
+    """Everything :func:`simulate_pattern` takes besides the ring list, in five groups."""
+
+    geometry: PatternGeometry
+    rings: RingSpec
+    diffuse: DiffuseSpec
+    beam: BeamSpec
+    detector: DetectorSpec
 
 
 def simulate_pattern(
@@ -142,103 +232,181 @@ def simulate_pattern(
     -------
     SimulatedPattern
     """
-    rng = np.random.default_rng(seed)
-    ny, nx = shape
-    cx = (nx - 1) / 2.0 if center_x_px is None else float(center_x_px)
-    cy = (ny - 1) / 2.0 if center_y_px is None else float(center_y_px)
+    spec = PatternSpec(
+        geometry=PatternGeometry(shape=shape, center_x_px=center_x_px, center_y_px=center_y_px,
+                                 ellipticity=ellipticity, ellipse_angle_deg=ellipse_angle_deg,
+                                 camera_constant_A_px=camera_constant_A_px, voltage_kv=voltage_kv),
+        rings=RingSpec(instrument_fwhm_per_nm=instrument_fwhm_per_nm, crystallite_size_nm=crystallite_size_nm,
+                       scherrer_constant=scherrer_constant, n_grains=n_grains, texture_strength=texture_strength,
+                       texture_angle_deg=texture_angle_deg, ring_area_counts_per_nm=ring_area_counts_per_nm),
+        diffuse=DiffuseSpec(background_counts=background_counts, background_exponent=background_exponent,
+                            floor_counts=floor_counts, halo=halo, halo_counts=halo_counts),
+        beam=BeamSpec(direct_beam=direct_beam, direct_beam_sigma_px=direct_beam_sigma_px, beam_stop=beam_stop,
+                      beam_stop_radius_px=beam_stop_radius_px, beam_stop_rod_width_px=beam_stop_rod_width_px,
+                      beam_stop_angle_deg=beam_stop_angle_deg, beam_stop_transmission=beam_stop_transmission),
+        detector=DetectorSpec(dose=dose, noise=noise, hot_pixel_fraction=hot_pixel_fraction,
+                              dead_pixel_fraction=dead_pixel_fraction, dtype=dtype,
+                              saturation_level=saturation_level, seed=seed),
+    )
+    return simulate_from_spec(d_angstrom, intensity, spec)
+
+
+def simulate_from_spec(d_angstrom, intensity, spec: PatternSpec) -> SimulatedPattern:
+    """Simulate a ring pattern of rings d (Å) with relative intensities ``intensity`` as ``spec`` says.
+
+    The steps, in the order in which they draw from the one random generator: expected counts
+    of the rings and the diffuse scattering (grain spots draw here), the direct beam and the
+    beam stop, Poisson counts and saturation, hot and dead pixels.
+    """
+    rng = np.random.default_rng(spec.detector.seed)
+    cx, cy = spec.geometry.center()
+    g_rings, area = _ring_list(d_angstrom, intensity, spec.rings.ring_area_counts_per_nm)
+    expected, fwhm = _expected_counts(spec, cx, cy, g_rings, area, rng)
+    shadow = _add_beam_and_stop(expected, spec.beam, spec.geometry.shape, cx, cy, spec.detector.dose)
+    img, level = _detector_counts(expected, spec.detector, rng)
+    hot, dead = _add_pixel_defects(img, spec.detector, level, spec.geometry.shape, rng)
+    out = _output_image(img, spec.detector.dtype)
+
+    g, det, r = spec.geometry, spec.detector, spec.rings
+    geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=float(g.ellipticity),
+                        ellipse_angle_deg=float(g.ellipse_angle_deg),
+                        camera_constant_A_px=float(g.camera_constant_A_px), voltage_kv=float(g.voltage_kv))
+    settings = dict(dose=det.dose, beam_stop=spec.beam.beam_stop, n_grains=r.n_grains,
+                    crystallite_size_nm=r.crystallite_size_nm, instrument_fwhm_per_nm=r.instrument_fwhm_per_nm,
+                    seed=det.seed, wavelength_angstrom=electron_wavelength_angstrom(g.voltage_kv))
+    return SimulatedPattern(image=out, geometry=geometry, beam_stop=shadow, hot_pixels=hot, dead_pixels=dead,
+                            ring_g_per_nm=g_rings, ring_fwhm_per_nm=np.full(g_rings.size, fwhm), settings=settings)
+
+
+def _ring_list(d_angstrom, intensity, ring_area_counts_per_nm: float) -> tuple[np.ndarray, np.ndarray]:
+    """Ring positions g = 10/d (1/nm) and areas (counts·nm⁻¹; the strongest ``ring_area_counts_per_nm``).
+
+    Rings with d ≤ 0 or intensity ≤ 0 are left out.
+    """
     d = np.atleast_1d(np.asarray(d_angstrom, dtype=float))
     inten = np.atleast_1d(np.asarray(intensity, dtype=float))
     keep = (d > 0) & (inten > 0)
     d, inten = d[keep], inten[keep]
     area = ring_area_counts_per_nm * inten / (inten.max() if inten.size else 1.0)
-    g_rings = 10.0 / d
+    return 10.0 / d, area
 
-    ux, uy = undistorted_offsets(shape, cx, cy, ellipticity, ellipse_angle_deg)
+
+def _expected_counts(spec: PatternSpec, cx: float, cy: float, g_rings, area, rng) -> tuple[np.ndarray, float]:
+    """Expected counts (float32, before dose) of the rings and the diffuse scattering, and the ring FWHM (1/nm).
+
+    Every pixel's undistorted g is computed once; the diffuse part and smooth rings are one 1D
+    profile drawn by ``np.interp``, azimuthally modulated rings are added pixel by pixel.
+    """
+    g = spec.geometry
+    ux, uy = undistorted_offsets(g.shape, cx, cy, g.ellipticity, g.ellipse_angle_deg)
     radius = np.sqrt(ux * ux + uy * uy)
-    px_per_g = camera_constant_A_px / 10.0  # px per (1/nm)
+    px_per_g = g.camera_constant_A_px / 10.0  # px per (1/nm)
     g_img = radius / np.float32(px_per_g)
+    del radius
 
-    size_fwhm = scherrer_constant / crystallite_size_nm if crystallite_size_nm else 0.0
-    fwhm, eta = voigt_as_pseudo_voigt(instrument_fwhm_per_nm, size_fwhm)
+    rings = spec.rings
+    size_fwhm = rings.scherrer_constant / rings.crystallite_size_nm if rings.crystallite_size_nm else 0.0
+    fwhm, eta = voigt_as_pseudo_voigt(rings.instrument_fwhm_per_nm, size_fwhm)
     g_max = float(g_img.max())
     step = min(fwhm / 8.0, 0.25 / px_per_g)
     g_grid = np.arange(0.0, g_max + 2 * step, step)
 
-    # continuous part: background + halo + smooth rings, through one 1D profile
-    profile = floor_counts + background_counts * (g_grid**2 + 0.09) ** (-background_exponent / 2.0)
-    if halo is not None:
-        profile = profile + halo_counts * np.asarray(halo(g_grid), dtype=float)
-    modulated = n_grains is not None or texture_strength != 0.0
-    if not modulated:
+    profile = _diffuse_profile(g_grid, spec.diffuse)
+    if not rings.modulated:
         for gk, ak in zip(g_rings, area):
             profile += ak * unit_pseudo_voigt(g_grid - gk, fwhm, eta)
     expected = np.interp(g_img, g_grid, profile).astype(np.float32)
+    if rings.modulated:
+        _add_modulated_rings(expected, g_img, ux, uy, g_rings, area, fwhm, eta, rings, px_per_g, rng)
+    return expected, fwhm
 
-    if modulated:
-        _add_modulated_rings(expected, g_img, ux, uy, g_rings, area, fwhm, eta, n_grains,
-                             texture_strength, texture_angle_deg, px_per_g, rng)
-    del ux, uy
 
-    # observed (distorted) distance from the centre, for beam and beam stop
+def _diffuse_profile(g_grid: np.ndarray, diffuse: DiffuseSpec) -> np.ndarray:
+    """Diffuse counts on ``g_grid`` (1/nm): flat floor, b·(g² + 0.09)^(−n/2) falloff and the optional halo."""
+    falloff = (g_grid**2 + 0.09) ** (-diffuse.background_exponent / 2.0)
+    profile = diffuse.floor_counts + diffuse.background_counts * falloff
+    if diffuse.halo is not None:
+        profile = profile + diffuse.halo_counts * np.asarray(diffuse.halo(g_grid), dtype=float)
+    return profile
+
+
+def _add_beam_and_stop(expected: np.ndarray, beam: BeamSpec, shape, cx: float, cy: float, dose: float):
+    """Add the direct beam to ``expected`` (in place) and shade the beam stop; returns the stop's shadow or None.
+
+    The beam peaks at 4·10⁵/dose expected counts (4·10⁵ once the dose is applied), Gaussian with σ
+    in observed (distorted) px; the stop blocks it and passes ``beam_stop_transmission`` of the rest.
+    """
+    ny, nx = shape
     xx = np.arange(nx, dtype=np.float32) - np.float32(cx)
     yy = np.arange(ny, dtype=np.float32) - np.float32(cy)
     shadow = None
-    if beam_stop:
-        shadow = _beam_stop_shadow(xx, yy, beam_stop_radius_px, beam_stop_rod_width_px, beam_stop_angle_deg)
-    if direct_beam:
+    if beam.beam_stop:
+        shadow = _beam_stop_shadow(xx, yy, beam.beam_stop_radius_px, beam.beam_stop_rod_width_px,
+                                   beam.beam_stop_angle_deg)
+    if beam.direct_beam:
         r2 = xx[None, :] ** 2 + yy[:, None] ** 2
         peak = 4.0e5 / max(dose, 1e-6)
-        beam = np.float32(peak) * np.exp(-r2 / np.float32(2 * direct_beam_sigma_px**2))
+        beam_counts = np.float32(peak) * np.exp(-r2 / np.float32(2 * beam.direct_beam_sigma_px**2))
+        del r2
         if shadow is not None:
-            beam[shadow] = 0.0  # the stop blocks the direct beam itself
-        expected += beam
-        del r2, beam
+            beam_counts[shadow] = 0.0  # the stop blocks the direct beam itself
+        expected += beam_counts
+        del beam_counts
     if shadow is not None:
-        expected[shadow] *= np.float32(beam_stop_transmission)
+        expected[shadow] *= np.float32(beam.beam_stop_transmission)
+    return shadow
 
-    expected *= np.float32(dose)
-    if noise:
+
+def _detector_counts(expected: np.ndarray, detector: DetectorSpec, rng) -> tuple[np.ndarray, float | None]:
+    """Counts (float32) after the dose, Poisson noise and saturation, and the saturation level (counts or None).
+
+    ``expected`` is scaled by the dose in place (and is the result itself without noise).
+    """
+    expected *= np.float32(detector.dose)
+    if detector.noise:
         img = rng.poisson(expected).astype(np.float32)
     else:
         img = expected
-    level = saturation_level
-    if dtype == "uint16":
+    level = detector.saturation_level
+    if detector.dtype == "uint16":
         level = 65535.0 if level is None else min(level, 65535.0)
     if level is not None:
         np.minimum(img, np.float32(level), out=img)
+    return img, level
 
+
+def _add_pixel_defects(img: np.ndarray, detector: DetectorSpec, level: float | None, shape, rng):
+    """Set hot pixels (20× their counts + 2000·dose + 500, clipped at ``level``) and dead pixels (0) in place.
+
+    Returns the flat indices (hot, dead); hot pixels are drawn first, then dead ones.
+    """
+    ny, nx = shape
     n_px = nx * ny
     hot = (
-        rng.choice(n_px, size=int(round(hot_pixel_fraction * n_px)), replace=False)
-        if hot_pixel_fraction
+        rng.choice(n_px, size=int(round(detector.hot_pixel_fraction * n_px)), replace=False)
+        if detector.hot_pixel_fraction
         else np.zeros(0, int)
     )
     dead = (
-        rng.choice(n_px, size=int(round(dead_pixel_fraction * n_px)), replace=False)
-        if dead_pixel_fraction
+        rng.choice(n_px, size=int(round(detector.dead_pixel_fraction * n_px)), replace=False)
+        if detector.dead_pixel_fraction
         else np.zeros(0, int)
     )
     flat = img.reshape(-1)
     if hot.size:
-        flat[hot] = np.minimum(flat[hot] * 20.0 + 2000.0 * dose + 500.0, level if level else np.inf)
+        flat[hot] = np.minimum(flat[hot] * 20.0 + 2000.0 * detector.dose + 500.0, level if level else np.inf)
     if dead.size:
         flat[dead] = 0.0
+    return hot, dead
 
+
+def _output_image(img: np.ndarray, dtype: str) -> np.ndarray:
+    """``img`` as "uint16" (rounded) or "float32" counts."""
     if dtype == "uint16":
-        out = np.rint(img).astype(np.uint16)
-    elif dtype == "float32":
-        out = img.astype(np.float32, copy=False)
-    else:
-        raise ValueError(f"dtype must be 'uint16' or 'float32', got {dtype!r}")
-
-    geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=float(ellipticity),
-                        ellipse_angle_deg=float(ellipse_angle_deg),
-                        camera_constant_A_px=float(camera_constant_A_px), voltage_kv=float(voltage_kv))
-    settings = dict(dose=dose, beam_stop=beam_stop, n_grains=n_grains, crystallite_size_nm=crystallite_size_nm,
-                    instrument_fwhm_per_nm=instrument_fwhm_per_nm, seed=seed,
-                    wavelength_angstrom=electron_wavelength_angstrom(voltage_kv))
-    return SimulatedPattern(image=out, geometry=geometry, beam_stop=shadow, hot_pixels=hot, dead_pixels=dead,
-                            ring_g_per_nm=g_rings, ring_fwhm_per_nm=np.full(g_rings.size, fwhm), settings=settings)
+        return np.rint(img).astype(np.uint16)
+    if dtype == "float32":
+        return img.astype(np.float32, copy=False)
+    raise ValueError(f"dtype must be 'uint16' or 'float32', got {dtype!r}")
 
 
 def _beam_stop_shadow(xx, yy, radius_px, rod_width_px, angle_deg):
@@ -252,9 +420,12 @@ def _beam_stop_shadow(xx, yy, radius_px, rod_width_px, angle_deg):
     return shadow
 
 
-def _add_modulated_rings(expected, g_img, ux, uy, g_rings, area, fwhm, eta, n_grains, texture_strength,
-                         texture_angle_deg, px_per_g, rng):
-    """Add rings with an azimuthal modulation (grain spots and/or texture) pixel by pixel in their annulus."""
+def _add_modulated_rings(expected, g_img, ux, uy, g_rings, area, fwhm, eta, rings: RingSpec, px_per_g, rng):
+    """Add rings with an azimuthal modulation (grain spots and/or texture) pixel by pixel in their annulus.
+
+    g_rings, fwhm in 1/nm, area in counts·nm⁻¹, px_per_g in px·nm; ``expected`` is changed in place.
+    """
+    n_grains, texture_strength, texture_angle_deg = rings.n_grains, rings.texture_strength, rings.texture_angle_deg
     n_psi = 4096
     psi_grid = np.linspace(-math.pi, math.pi, n_psi + 1)
     half = 6.0 * fwhm
