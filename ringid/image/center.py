@@ -308,143 +308,198 @@ def refine_geometry(data: np.ndarray, mask: np.ndarray | None, *, center_guess: 
     RingidError
         When no ring can be found to centre on.
     """
-    ny, nx = data.shape
-    valid = np.ones(data.shape, bool) if mask is None else ~mask
     coarse = None
     if center_guess is None:
         coarse = coarse_center(data, mask)
         cx, cy = coarse.center_x_px, coarse.center_y_px
     else:
         cx, cy = map(float, center_guess)
-    eps, ang = float(ellipticity), float(ellipse_angle_deg)
+    refinement = _GeometryRefinement(_Pixels.valid(data, mask), cx, cy, float(ellipticity), float(ellipse_angle_deg),
+                                     fit_ellipse=fit_ellipse, n_sectors=n_sectors, max_rings=max_rings,
+                                     min_radius_px=min_radius_px, max_iter=max_iter, tolerance_px=tolerance_px,
+                                     path=path)
+    refinement.run()
+    return refinement.result(coarse)
 
-    flat_idx = np.flatnonzero(valid.reshape(-1))
-    rows = (flat_idx // nx).astype(np.float32)
-    cols = (flat_idx % nx).astype(np.float32)
-    vals = data.reshape(-1)[flat_idx].astype(np.float32)
 
-    def offsets(cx, cy, eps, ang, r, c):
+@dataclass(frozen=True)
+class _Pixels:
+    """Flat list of pixels: row and column of each pixel centre (px) and its value (counts), all float32."""
+
+    rows: np.ndarray
+    cols: np.ndarray
+    vals: np.ndarray
+
+    @classmethod
+    def valid(cls, data: np.ndarray, mask: np.ndarray | None) -> _Pixels:
+        """The pixels of ``data`` not excluded by ``mask`` (True = excluded), in raster order."""
+        _, nx = data.shape
+        valid = np.ones(data.shape, bool) if mask is None else ~mask
+        flat_idx = np.flatnonzero(valid.reshape(-1))
+        return cls(rows=(flat_idx // nx).astype(np.float32), cols=(flat_idx % nx).astype(np.float32),
+                   vals=data.reshape(-1)[flat_idx].astype(np.float32))
+
+    def take(self, sel) -> _Pixels:
+        """The pixels picked by an index array or slice ``sel``."""
+        return _Pixels(rows=self.rows[sel], cols=self.cols[sel], vals=self.vals[sel])
+
+    def offsets(self, cx: float, cy: float, eps: float, ang: float) -> tuple[np.ndarray, np.ndarray]:
+        """Undistorted offsets (ux, uy) in px from the centre (cx, cy) px, for distortion ε and θ (deg)."""
         inv = undistortion_matrix(eps, ang).astype(np.float32)
-        dx = c - np.float32(cx)
-        dy = r - np.float32(cy)
+        dx = self.cols - np.float32(cx)
+        dy = self.rows - np.float32(cy)
         return inv[0, 0] * dx + inv[0, 1] * dy, inv[1, 0] * dx + inv[1, 1] * dy
 
-    full_rows, full_cols, full_vals = rows, cols, vals
-    limits = {}
+    def radius(self, cx: float, cy: float, eps: float, ang: float) -> np.ndarray:
+        """Undistorted radius (px) of each pixel, geometry as in :meth:`offsets`."""
+        ux, uy = self.offsets(cx, cy, eps, ang)
+        return np.sqrt(ux * ux + uy * uy)
 
-    def detect(cx, cy, eps, ang):
-        """Rings in the radial profile at this geometry, and the pixels near them."""
-        ux, uy = offsets(cx, cy, eps, ang, full_rows, full_cols)
-        rad = np.sqrt(ux * ux + uy * uy)
-        del ux, uy
-        if "min" not in limits:
-            limits["min"] = _first_covered_radius(rad) + 8.0 if min_radius_px is None else float(min_radius_px)
-            limits["max"] = _last_covered_radius(rad)
-        ring_r, ring_fwhm, _ = find_rings(rad, full_vals, max_rings=max_rings, min_radius_px=limits["min"])
+
+class _GeometryRefinement:
+    """The sector-fit iteration of :func:`refine_geometry`, with its state in plain attributes.
+
+    Geometry: cx, cy (px), eps (ε), ang (θ, deg). Rings: ``radii`` and window widths
+    ``ring_fwhm`` (undistorted px), found at the geometry ``detected_at``, and ``near``, the
+    valid pixels near them. With more than 400 000 of those it iterates on every ``stride`` = 4th
+    pixel until the centre moves less than ``phase_tol`` = 0.05 px, then on all of them; when
+    the geometry has moved by more than 1.5 px since the rings were found (a poor start), they
+    are found again at the new geometry (at most twice).
+    """
+
+    def __init__(self, pixels: _Pixels, cx: float, cy: float, eps: float, ang: float, *, fit_ellipse: bool,
+                 n_sectors: int, max_rings: int, min_radius_px: float | None, max_iter: int, tolerance_px: float,
+                 path):
+        self.pixels = pixels
+        self.cx, self.cy, self.eps, self.ang = cx, cy, eps, ang
+        self.fit_ellipse, self.n_sectors, self.max_rings = fit_ellipse, n_sectors, max_rings
+        self.max_iter, self.tolerance_px, self.path = max_iter, tolerance_px, path
+        rad = pixels.radius(cx, cy, eps, ang)
+        # rings are searched outside the beam (stop) and within the covered part of the image
+        self.min_radius_px = _first_covered_radius(rad) + 8.0 if min_radius_px is None else float(min_radius_px)
+        self.max_radius_px = _last_covered_radius(rad)
+        self.n_detect = 0
+        self.n_iter = 0
+        self.fit = None
+        self.points = None
+        self._detect(rad)
+
+    def _detect(self, rad: np.ndarray) -> None:
+        """Find the rings in the radial profile of all pixels (undistorted radii ``rad``, px), keep the pixels near
+        them and restart on every ``stride``-th of those."""
+        ring_r, ring_fwhm, _ = find_rings(rad, self.pixels.vals, max_rings=self.max_rings,
+                                          min_radius_px=self.min_radius_px)
         if ring_r.size == 0:
-            raise RingidError(path, "no ring found to fit the centre on")
+            raise RingidError(self.path, "no ring found to fit the centre on")
         # start with windows wide enough for a ring smeared by an uncorrected ellipse (ε up
         # to about 3 %), narrowed to the measured widths once the geometry has settled
-        if fit_ellipse:
+        if self.fit_ellipse:
             ring_fwhm = np.maximum(ring_fwhm, 3.0 + 0.03 * ring_r)
-        sel = _near_rings(rad, ring_r, 3.0 * ring_fwhm + 6.0)
-        return ring_r, ring_fwhm, full_rows[sel], full_cols[sel], full_vals[sel]
+        self.near = self.pixels.take(_near_rings(rad, ring_r, 3.0 * ring_fwhm + 6.0))
+        self.ring_fwhm = ring_fwhm
+        self.radii = ring_r.copy()
+        self.detected_at = (self.cx, self.cy, self.eps, self.ang)
+        self.n_detect += 1
+        self.stride = 4 if self.near.vals.size > 400_000 else 1
+        self.phase_tol = 0.05 if self.stride > 1 else self.tolerance_px
 
-    ring_r, ring_fwhm, all_rows, all_cols, all_vals = detect(cx, cy, eps, ang)
-    detected_at = (cx, cy, eps, ang)
-    n_detect = 1
+    def run(self) -> None:
+        """Sector passes until the geometry moves less than the tolerance (or the passes run out)."""
+        while self.n_iter < self.max_iter + 2 * (self.n_detect - 1):
+            self.n_iter += 1
+            moved, sigma_now = self._sector_pass()
+            if self._drift() > 1.5 and self.n_detect < 3 and moved < 1.0:
+                self._detect(self.pixels.radius(self.cx, self.cy, self.eps, self.ang))
+                continue
+            if self.stride > 1:
+                if moved < self.phase_tol or self.n_iter >= self.max_iter - 2:
+                    self._narrow_to_windows()
+                continue
+            if moved < max(self.tolerance_px, 0.3 * sigma_now):
+                break
 
-    # iterate on a quarter of the pixels until the centre moves < 0.05 px, then on all of
-    # them; when the geometry has moved by > 1.5 px since the rings were found (a poor
-    # start), find them again at the new geometry
-    fit = None
-    points = None
-    n_iter = 0
-    radii = ring_r.copy()
-    moved = math.inf
-    stride = 4 if all_vals.size > 400_000 else 1
-    phase_tol = 0.05 if stride > 1 else tolerance_px
-    while n_iter < max_iter + 2 * (n_detect - 1):
-        n_iter += 1
-        rows, cols, vals = all_rows[::stride], all_cols[::stride], all_vals[::stride]
-        geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=ang)
-        ux, uy = offsets(cx, cy, eps, ang, rows, cols)
-        points, widths = _sector_points(ux, uy, vals, radii, ring_fwhm, n_sectors, geometry)
+    def _sector_pass(self) -> tuple[float, float]:
+        """Measure the rings in azimuth sectors, fit them jointly and move the geometry by the fit.
+
+        Returns how far the geometry moved (px: the centre shift, or the ellipse change at the
+        outermost ring if larger) and the centre's standard uncertainty (px).
+        """
+        px = self.near.take(slice(None, None, self.stride))
+        geometry = Geometry(center_x_px=self.cx, center_y_px=self.cy, ellipticity=self.eps,
+                            ellipse_angle_deg=self.ang)
+        ux, uy = px.offsets(self.cx, self.cy, self.eps, self.ang)
+        points, widths = _sector_points(ux, uy, px.vals, self.radii, self.ring_fwhm, self.n_sectors, geometry)
         del ux, uy
         n_used = np.unique(points.ring_index).size
         if points.radius_px.size < 6 + n_used:
-            raise RingidError(path, "too few ring sectors with signal to fit the centre")
+            raise RingidError(self.path, "too few ring sectors with signal to fit the centre")
         fit = fit_sector_positions(points.ring_index, points.azimuth_rad, points.radius_px, points.sigma_px,
-                                   radii.size, fit_distortion=fit_ellipse)
-        a = distortion_matrix(eps, ang)
+                                   self.radii.size, fit_distortion=self.fit_ellipse)
+        self.fit, self.points = fit, points
+        a = distortion_matrix(self.eps, self.ang)
         shift = a @ np.array([fit.delta_x_px, fit.delta_y_px])
-        cx, cy = cx + float(shift[0]), cy + float(shift[1])
-        if fit_ellipse:
-            eps, ang = compose_distortion(eps, ang, fit.e1, fit.e2)
+        self.cx, self.cy = self.cx + float(shift[0]), self.cy + float(shift[1])
+        if self.fit_ellipse:
+            self.eps, self.ang = compose_distortion(self.eps, self.ang, fit.e1, fit.e2)
         fitted = np.isfinite(fit.ring_radius_px) & (fit.ring_radius_px > 0)
-        radii = np.where(fitted, fit.ring_radius_px, radii)
-        e_move = math.hypot(fit.e1, fit.e2) * float(radii.max())
+        self.radii = np.where(fitted, fit.ring_radius_px, self.radii)
+        e_move = math.hypot(fit.e1, fit.e2) * float(self.radii.max())
         sigma_now = math.sqrt(max(0.5 * (fit.covariance[0, 0] + fit.covariance[1, 1]), 0.0))
         moved = max(math.hypot(*shift), e_move)
         # windows follow the ring widths measured in this pass when its geometry was within
         # 0.5 px of the result (before, an uncorrected ellipse smears a ring into a double horn)
         if moved < 0.5:
-            ring_fwhm = np.where(np.isfinite(widths), np.clip(widths, 1.0, 3.0 * ring_fwhm), ring_fwhm)
-        drift = math.hypot(cx - detected_at[0], cy - detected_at[1]) + \
-            abs(eps - detected_at[2]) * float(radii.max())
-        if drift > 1.5 and n_detect < 3 and moved < 1.0:
-            ring_r, ring_fwhm, all_rows, all_cols, all_vals = detect(cx, cy, eps, ang)
-            detected_at = (cx, cy, eps, ang)
-            n_detect += 1
-            radii = ring_r.copy()
-            moved = math.inf
-            stride = 4 if all_vals.size > 400_000 else 1
-            phase_tol = 0.05 if stride > 1 else tolerance_px
-            continue
-        if stride > 1:
-            if moved < phase_tol or n_iter >= max_iter - 2:
-                stride, phase_tol = 1, tolerance_px
-                # the windows have narrowed to the measured widths: drop the pixels outside them
-                ux, uy = offsets(cx, cy, eps, ang, all_rows, all_cols)
-                rad = np.sqrt(ux * ux + uy * uy)
-                del ux, uy
-                keep = _near_rings(rad, radii, 3.0 * ring_fwhm + 6.0)
-                all_rows, all_cols, all_vals = all_rows[keep], all_cols[keep], all_vals[keep]
-                del rad, keep
-            continue
-        if moved < max(tolerance_px, 0.3 * sigma_now):
-            break
-    min_radius_px, max_radius_px = limits["min"], limits["max"]
-    flags: list[str] = []
-    if radii.size < 2:
-        flags.append("single_ring_center")
-    # drop rings that had fewer than 3 usable sectors in the last pass
-    n_pts = np.bincount(points.ring_index, minlength=radii.size)
-    keep_rings = n_pts >= 3
-    if not keep_rings.all():
-        remap = np.cumsum(keep_rings) - 1
-        sel_pts = keep_rings[points.ring_index]
-        points = SectorPoints(geometry=points.geometry, ring_index=remap[points.ring_index[sel_pts]],
-                              azimuth_rad=points.azimuth_rad[sel_pts], radius_px=points.radius_px[sel_pts],
-                              sigma_px=points.sigma_px[sel_pts])
-        radii, ring_fwhm = radii[keep_rings], ring_fwhm[keep_rings]
-        ring_sigma = fit.ring_radius_sigma_px[keep_rings]
-    else:
-        ring_sigma = fit.ring_radius_sigma_px
-    cov = fit.covariance
-    center_sigma = math.sqrt(max(0.5 * (cov[0, 0] + cov[1, 1]), 0.0))
-    eps_sigma = ang_sigma = float("nan")
-    if fit_ellipse:
-        # ε ≈ 2·|e| to first order, θ = atan2(e₂, e₁)/2 in the current frame
-        e_sig = math.sqrt(max(0.5 * (cov[2, 2] + cov[3, 3]), 0.0))
-        eps_sigma = 2.0 * e_sig
-        ang_sigma = math.degrees(e_sig / max(eps, e_sig)) / 2.0 if eps > 0 else float("nan")
-    geometry = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=ang,
-                        center_sigma_px=center_sigma)
-    return GeometryFit(geometry=geometry, ellipticity_sigma=eps_sigma, ellipse_angle_sigma_deg=ang_sigma,
-                       ring_radius_px=radii, ring_radius_sigma_px=ring_sigma, ring_fwhm_px=ring_fwhm,
-                       rms_px=fit.rms_px, n_iterations=n_iter, points=points, coarse=coarse,
-                       min_radius_px=float(min_radius_px), max_radius_px=max_radius_px, flags=tuple(flags))
+            self.ring_fwhm = np.where(np.isfinite(widths), np.clip(widths, 1.0, 3.0 * self.ring_fwhm),
+                                      self.ring_fwhm)
+        return moved, sigma_now
+
+    def _drift(self) -> float:
+        """How far (px) the geometry has moved since the rings were found: centre shift plus Δε times the
+        outermost ring radius."""
+        x0, y0, eps0, _ = self.detected_at
+        return math.hypot(self.cx - x0, self.cy - y0) + abs(self.eps - eps0) * float(self.radii.max())
+
+    def _narrow_to_windows(self) -> None:
+        """Go on with every pixel, dropping those outside the ring windows, which have narrowed to the measured
+        widths."""
+        self.stride, self.phase_tol = 1, self.tolerance_px
+        rad = self.near.radius(self.cx, self.cy, self.eps, self.ang)
+        self.near = self.near.take(_near_rings(rad, self.radii, 3.0 * self.ring_fwhm + 6.0))
+
+    def result(self, coarse: CoarseCenter | None) -> GeometryFit:
+        """The geometry of the last pass with its uncertainties; rings with fewer than 3 usable sectors in that
+        pass are dropped."""
+        radii, ring_fwhm, points, fit = self.radii, self.ring_fwhm, self.points, self.fit
+        flags: list[str] = []
+        if radii.size < 2:
+            flags.append("single_ring_center")
+        n_pts = np.bincount(points.ring_index, minlength=radii.size)
+        keep_rings = n_pts >= 3
+        if not keep_rings.all():
+            remap = np.cumsum(keep_rings) - 1
+            sel_pts = keep_rings[points.ring_index]
+            points = SectorPoints(geometry=points.geometry, ring_index=remap[points.ring_index[sel_pts]],
+                                  azimuth_rad=points.azimuth_rad[sel_pts], radius_px=points.radius_px[sel_pts],
+                                  sigma_px=points.sigma_px[sel_pts])
+            radii, ring_fwhm = radii[keep_rings], ring_fwhm[keep_rings]
+            ring_sigma = fit.ring_radius_sigma_px[keep_rings]
+        else:
+            ring_sigma = fit.ring_radius_sigma_px
+        cov = fit.covariance
+        center_sigma = math.sqrt(max(0.5 * (cov[0, 0] + cov[1, 1]), 0.0))
+        eps, eps_sigma, ang_sigma = self.eps, float("nan"), float("nan")
+        if self.fit_ellipse:
+            # ε ≈ 2·|e| to first order, θ = atan2(e₂, e₁)/2 in the current frame
+            e_sig = math.sqrt(max(0.5 * (cov[2, 2] + cov[3, 3]), 0.0))
+            eps_sigma = 2.0 * e_sig
+            ang_sigma = math.degrees(e_sig / max(eps, e_sig)) / 2.0 if eps > 0 else float("nan")
+        geometry = Geometry(center_x_px=self.cx, center_y_px=self.cy, ellipticity=eps, ellipse_angle_deg=self.ang,
+                            center_sigma_px=center_sigma)
+        return GeometryFit(geometry=geometry, ellipticity_sigma=eps_sigma, ellipse_angle_sigma_deg=ang_sigma,
+                           ring_radius_px=radii, ring_radius_sigma_px=ring_sigma, ring_fwhm_px=ring_fwhm,
+                           rms_px=fit.rms_px, n_iterations=self.n_iter, points=points, coarse=coarse,
+                           min_radius_px=float(self.min_radius_px), max_radius_px=self.max_radius_px,
+                           flags=tuple(flags))
 
 
 def _near_rings(rad: np.ndarray, radii: np.ndarray, margin: np.ndarray) -> np.ndarray:
