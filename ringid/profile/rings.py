@@ -140,7 +140,14 @@ class RingFit:
 # ---------------------------------------------------------------- line shapes
 
 
-def _components_and_jacobian(g, params, n_comp, want_jac=True):
+def _components(g, params, n_comp):
+    """The n_comp pseudo-Voigts of params (g0, FWHM, η, area per component) on the grid g; (n_comp, n_g)."""
+    p = params.reshape(n_comp, 4)
+    return pseudo_voigt(g[None, :], p[:, 0:1], p[:, 1:2], p[:, 2:3], p[:, 3:4])
+
+
+def _jacobian(g, params, n_comp):
+    """Derivatives of each of :func:`_components` with respect to its 4 parameters; (n_comp, 4, n_g)."""
     p = params.reshape(n_comp, 4)
     g0, fwhm, eta, area = p[:, 0:1], p[:, 1:2], p[:, 2:3], p[:, 3:4]
     x = g[None, :] - g0
@@ -149,10 +156,6 @@ def _components_and_jacobian(g, params, n_comp, want_jac=True):
     gauss = GAUSS_HEIGHT / fwhm * e
     lorentz = LORENTZ_HEIGHT / fwhm / (1.0 + u)
     shape = eta * lorentz + (1.0 - eta) * gauss
-    comps = area * shape
-    if not want_jac:
-        return comps, None
-    # derivatives of each component with respect to its 4 parameters, shape (n_comp, 4, n_g)
     dg_dg0 = gauss * (8.0 * LN2 * x / fwhm**2)
     dl_dg0 = lorentz * (8.0 * x / fwhm**2) / (1.0 + u)
     dg_dw = gauss * (-1.0 / fwhm + 2.0 * LN2 * u / fwhm)
@@ -162,7 +165,7 @@ def _components_and_jacobian(g, params, n_comp, want_jac=True):
     jac[:, 1] = area * (eta * dl_dw + (1.0 - eta) * dg_dw)
     jac[:, 2] = area * (lorentz - gauss)
     jac[:, 3] = shape
-    return comps, jac
+    return jac
 
 
 # ---------------------------------------------------------------- detection
@@ -413,11 +416,11 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
     bas_w = (bas * ws).T
 
     def fun(p):
-        comps, _ = _components_and_jacobian(gs, p[: 4 * n_comp], n_comp, want_jac=False)
+        comps = _components(gs, p[: 4 * n_comp], n_comp)
         return (comps.sum(axis=0) + p[4 * n_comp :] @ bas - ys) * ws
 
     def jac(p):
-        _, jc = _components_and_jacobian(gs, p[: 4 * n_comp], n_comp)
+        jc = _jacobian(gs, p[: 4 * n_comp], n_comp)
         return np.hstack([(jc.reshape(4 * n_comp, gs.size) * ws).T, bas_w])
 
     # exact trust-region steps (an SVD of J per iteration) for small problems; for many rings
@@ -444,7 +447,7 @@ def _fit_components(g, y, sigma, ok, background, cands, fwhm_lo, fwhm_hi, basis,
     tol = np.finfo(float).eps * max(J.shape) * (sv[0] if sv.size else 0.0)
     inv = np.where(sv > tol, 1.0 / np.where(sv > tol, sv, 1.0) ** 2, 0.0)
     cov = ((vt.T * inv) @ vt * chi2_nu)[: 4 * n_comp, : 4 * n_comp]
-    comps, _ = _components_and_jacobian(g, p[: 4 * n_comp], n_comp, want_jac=False)
+    comps = _components(g, p[: 4 * n_comp], n_comp)
     return _Fit(p[: 4 * n_comp].reshape(n_comp, 4), cov, chi2_nu, comps, p[4 * n_comp :] @ basis, res.status > 0)
 
 
