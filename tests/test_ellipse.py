@@ -10,7 +10,6 @@ from ringid.image.ellipse import (
     distortion_matrix,
     ellipse_from_matrix,
     fit_sector_positions,
-    undistorted_radius,
     undistortion_matrix,
 )
 
@@ -48,13 +47,6 @@ def test_compose_small_residual_adds_ellipticity():
     eps, ang = compose_distortion(0.0, 0.0, 0.005, 0.0)
     assert eps == pytest.approx(1 - 0.995 / 1.005, rel=1e-12)
     assert ang == pytest.approx(0.0, abs=1e-9)
-
-
-def test_undistorted_radius_of_pixel_centres():
-    r = undistorted_radius((5, 7), 3.0, 2.0, 0.0, 0.0, dtype=np.float64)
-    assert r[2, 3] == 0.0
-    assert r[2, 6] == pytest.approx(3.0)
-    assert r[0, 3] == pytest.approx(2.0)
 
 
 def test_joint_fit_recovers_offset_and_ellipse_from_exact_points():

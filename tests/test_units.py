@@ -8,11 +8,8 @@ from ringid.core.units import (
     ELEMENTARY_CHARGE_C,
     PLANCK_J_S,
     SPEED_OF_LIGHT_M_S,
-    d_to_g,
     electron_wavelength_angstrom,
-    g_to_d,
     nominal_camera_constant_a_px,
-    relativistic_gamma,
 )
 
 
@@ -34,20 +31,9 @@ def test_electron_wavelength_handbook(kv, pm):
     assert electron_wavelength_angstrom(kv) * 100 == pytest.approx(pm, abs=0.00006)
 
 
-def test_gamma_200kv():
-    # source: γ = 1 + eV/m0c² with m0c² = 510.99895 keV (CODATA 2018; computed)
-    assert relativistic_gamma(200) == pytest.approx(1 + 200 / 510.99895, rel=1e-9)
-
-
 def test_wavelength_rejects_nonpositive_voltage():
     with pytest.raises(ValueError):
         electron_wavelength_angstrom(0)
-
-
-def test_g_d_round_trip():
-    assert g_to_d(d_to_g(2.3546)) == pytest.approx(2.3546)
-    # source: Au 111, d = 4.0782/√3 = 2.3546 Å, is 1/d = 4.247 nm⁻¹ (computed)
-    assert d_to_g(2.3546) == pytest.approx(4.247, abs=5e-4)
 
 
 def test_nominal_camera_constant():

@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
-
 # CODATA constants from scipy would cost an import of scipy on cheap paths; the
 # values below are CODATA 2018/2022 exact or recommended values, identical to
 # scipy.constants (checked in tests/test_units.py).
@@ -31,22 +29,6 @@ def electron_wavelength_angstrom(voltage_kv: float) -> float:
     m0 = ELECTRON_MASS_KG
     p = math.sqrt(2.0 * m0 * ev * (1.0 + ev / (2.0 * m0 * SPEED_OF_LIGHT_M_S**2)))
     return PLANCK_J_S / p * 1e10
-
-
-def relativistic_gamma(voltage_kv: float) -> float:
-    """Lorentz factor γ = 1 + eV/(m0 c²) of an electron accelerated through V kV."""
-    ev = ELEMENTARY_CHARGE_C * voltage_kv * 1e3
-    return 1.0 + ev / (ELECTRON_MASS_KG * SPEED_OF_LIGHT_M_S**2)
-
-
-def d_to_g(d_angstrom):
-    """Convert d (Å) to g = 1/d (1/nm)."""
-    return 10.0 / np.asarray(d_angstrom, dtype=float)
-
-
-def g_to_d(g_per_nm):
-    """Convert g = 1/d (1/nm) to d (Å)."""
-    return 10.0 / np.asarray(g_per_nm, dtype=float)
 
 
 def nominal_camera_constant_a_px(camera_length_mm: float, pixel_size_um: float, voltage_kv: float) -> float:

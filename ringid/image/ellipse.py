@@ -70,16 +70,6 @@ def undistorted_offsets(shape, center_x_px: float, center_y_px: float, elliptici
     return ux, uy
 
 
-def undistorted_radius(shape, center_x_px: float, center_y_px: float, ellipticity: float,
-                       ellipse_angle_deg: float, dtype=np.float32) -> np.ndarray:
-    """Undistorted radius |A⁻¹(p − c)| in px of every pixel centre, shape ``shape``."""
-    ux, uy = undistorted_offsets(shape, center_x_px, center_y_px, ellipticity, ellipse_angle_deg, dtype)
-    np.multiply(ux, ux, out=ux)
-    np.multiply(uy, uy, out=uy)
-    ux += uy
-    return np.sqrt(ux, out=ux)
-
-
 def ellipse_from_matrix(stretch: np.ndarray) -> tuple[float, float]:
     """(ε, θ in degrees) of any 2×2 map S taking undistorted to observed offsets.
 
