@@ -172,7 +172,7 @@ def test_an_unexpected_exception_fails_only_its_sample(inputs, tmp_path, monkeyp
     assert [r.status for r in records] == ["failed", "ok"]
     rec = json.loads((tmp_path / "out" / "au_fine" / "sample.json").read_text(encoding="utf-8"))
     assert rec["status"] == "failed" and rec["error"].startswith("internal error (RuntimeError: disk vanished)")
-    assert rec["crystallinity"] == "no_signal" and "\n" not in rec["error"]
+    assert rec["crystallinity"] == "" and "\n" not in rec["error"]
     for name in ("measured_rings.csv", "profile.csv", "thumbnail.npy"):
         assert (tmp_path / "out" / "au_fine" / name).is_file()
     assert json.loads((tmp_path / "out" / "au_coarse" / "sample.json").read_text(encoding="utf-8"))["status"] == "ok"

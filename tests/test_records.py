@@ -36,7 +36,7 @@ def test_sample_record_round_trip(tmp_path):
 
 
 def test_failed_sample_record_carries_only_who_and_why(tmp_path):
-    rec = SampleRecord("s2", status="failed", error="s2.tif: empty file (0 bytes)", crystallinity="no_signal")
+    rec = SampleRecord("s2", status="failed", error="s2.tif: empty file (0 bytes)")
     write_sample_record(tmp_path / "sample.json", rec)
     text = json.loads((tmp_path / "sample.json").read_text(encoding="utf-8"))
     assert set(text) == {"sample", "status", "error", "image", "calibration", "note", "ringid_version",

@@ -23,8 +23,7 @@ def make_results(tmp_path):
     (good / "rings.csv").write_text("g_per_nm,d_angstrom,kind,phase,hkl\n4.247,2.3546,ring,Au,1 1 1\n")
     bad = res / "samples" / "s2"
     bad.mkdir(parents=True)
-    write_sample_record(bad / "sample.json", SampleRecord("s2", status="failed", error="img.tif: not an image",
-                                                          crystallinity="no_signal"))
+    write_sample_record(bad / "sample.json", SampleRecord("s2", status="failed", error="img.tif: not an image"))
     (res / "samples" / "s3").mkdir(parents=True)  # the image job never finished
     (res / "library").mkdir()
     (res / "library" / "index.csv").write_text(
@@ -50,6 +49,7 @@ def test_summary_rows_and_failures(tmp_path):
     assert s1["center_x_px"] == "10.250" and s1["crystallite_size_nm"] == "12.3"
     assert (s2["status"], s2["error"]) == ("failed", "img.tif: not an image")
     assert s3["status"] == "failed" and "did not finish" in s3["error"]
+    assert s2["crystallinity"] == s3["crystallinity"] == ""  # nothing was measured
 
 
 def test_report_escapes_untrusted_text(tmp_path):

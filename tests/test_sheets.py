@@ -90,3 +90,38 @@ def test_missing_columns_and_missing_sheet(folder):
     cal = write(folder / "cal.csv", "calibration,voltage_kv\nc1,200\n")
     with pytest.raises(SheetError, match="needs the columns"):
         read_calibrations(cal)
+
+
+def test_a_misspelt_column_is_an_error_with_a_suggestion(folder):
+    """A typo in an optional column (voltge_kv for voltage_kv) must not be ignored in silence: the
+    sample would be measured with the default voltage, i.e. a wrong wavelength."""
+    cals = write(folder / "cal.csv", """
+calibration,image,standard,voltage_kv,pixel_size_mu
+film,cal.tif,Au,300,
+""")
+    samples = write(folder / "samples.csv", """
+sample,image,calibration,voltge_kv,notes,x_operator
+s1,a.tif,film,300,first film,JD
+""")
+    with pytest.raises(SheetError) as info:
+        read_sheets(samples, cals, folder / "phases")
+    lines = info.value.lines
+    assert len(lines) == 3, lines
+    assert any(line.startswith(f"{samples}:1: unknown column 'voltge_kv' (did you mean 'voltage_kv'?)")
+               for line in lines), lines
+    assert any(line.startswith(f"{samples}:1: unknown column 'notes' (did you mean 'note'?)") for line in lines)
+    assert any(line.startswith(f"{cals}:1: unknown column 'pixel_size_mu' (did you mean 'pixel_size_um'?)")
+               for line in lines), lines
+    assert not any("x_operator" in line for line in lines)  # a column of the user's own
+
+
+def test_an_unrelated_column_lists_the_known_ones(folder):
+    samples = write(folder / "samples.csv", """
+sample,image,calibration,temperature
+s1,a.tif,film,300
+""")
+    with pytest.raises(SheetError) as info:
+        read_samples(samples)
+    (line,) = info.value.lines
+    assert line == (f"{samples}:1: unknown column 'temperature'; the columns are sample, image, calibration, "
+                    "voltage_kv, note (columns of your own: start their names with 'x_')")

@@ -190,7 +190,7 @@ def test_bad_samples_are_isolated(inputs, reference_run):
     for s, problem in inputs["bad"].items():
         r = rows[s]
         assert r["status"] == "failed" and problem in r["error"] and "\n" not in r["error"], r
-        assert r["crystallinity"] == "no_signal" and r["phases"] == ""
+        assert r["crystallinity"] == "" and r["phases"] == ""  # nothing measured
     page = (results / "report.html").read_text(encoding="utf-8")
     assert page.rstrip().endswith("</html>")
     assert f"{len(rows)} samples: {len(GOOD)} ok, {len(inputs['bad'])} failed" in page

@@ -150,7 +150,7 @@ def _mark_failed(out: Path, identity: dict, exc: BaseException) -> SampleRecord:
         _write_empty_table(out / name)
     with atomic_path(out / "thumbnail.npy", suffix=".npy") as tmp:
         np.save(tmp, np.zeros((0, 0), np.uint8))
-    return SampleRecord(**identity, status="failed", error=_error_text(exc), crystallinity="no_signal")
+    return SampleRecord(**identity, status="failed", error=_error_text(exc))
 
 
 def write_failed_sample(out_dir: str | os.PathLike, exc: BaseException, *, sample: str, image, calibration_id: str = "",

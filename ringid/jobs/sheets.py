@@ -8,7 +8,8 @@ Calibration sheet (CSV), one of three kinds per row:
 - ``calibration,camera_constant_A_px,voltage_kv``: a known camera constant K (Å·px);
 - ``calibration,camera_length_mm,pixel_size_um,voltage_kv``: a nominal camera length.
 
-Image paths are absolute or relative to the sheet's folder. Ids must be safe file names
+Any other column is an error (with the nearest known name as a suggestion), except columns of
+the user's own, whose names start with ``x_``. Image paths are absolute or relative to the sheet's folder. Ids must be safe file names
 (letters, digits, ``.``, ``_``, ``-``; not starting with ``.``), since they name output folders.
 This module imports only the standard library (it runs when the workflow starts).
 """
@@ -25,6 +26,10 @@ from pathlib import Path
 from ringid.core.errors import RingidError
 
 SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,127}$")
+SAMPLE_COLUMNS = ("sample", "image", "calibration", "voltage_kv", "note")
+CALIBRATION_COLUMNS = ("calibration", "voltage_kv", "image", "standard", "camera_constant_A_px", "camera_length_mm",
+                       "pixel_size_um")
+OWN_COLUMN_PREFIX = "x_"  # columns of the user's own (ignored by ringid) start with this
 
 
 @dataclass(frozen=True)
@@ -103,6 +108,20 @@ def _start(path, problems: Problems | None, what: str):
     return own, problems, path, read
 
 
+def _check_columns(path: Path, header: set[str], known: tuple[str, ...], problems: Problems) -> None:
+    """An unknown column is a problem (a misspelt optional column would otherwise be ignored in
+    silence), with the nearest known name as a suggestion."""
+    import difflib
+
+    for column in sorted(header):
+        if not column or column in known or column.startswith(OWN_COLUMN_PREFIX):
+            continue
+        near = difflib.get_close_matches(column.lower(), known, n=1, cutoff=0.6)
+        hint = f" (did you mean {near[0]!r}?)" if near else ""
+        problems.add(f"{path}:1", f"unknown column {column!r}{hint}; the columns are {', '.join(known)} "
+                                  f"(columns of your own: start their names with {OWN_COLUMN_PREFIX!r})")
+
+
 def _check_id(path, line, column, value, problems) -> bool:
     if not value:
         problems.add(f"{path}:{line}", f"empty {column}")
@@ -145,6 +164,7 @@ def read_calibrations(path: str | os.PathLike, phases_dir: str | os.PathLike | N
     if read is None:
         return out
     header, rows = read
+    _check_columns(path, header, CALIBRATION_COLUMNS, problems)
     if "calibration" not in header or "voltage_kv" not in header:
         missing = [c for c in ("calibration", "voltage_kv") if c not in header]
         problems.add(path, f"missing column(s) {', '.join(missing)}")
@@ -201,6 +221,7 @@ def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow
     if read is None:
         return out
     header, rows = read
+    _check_columns(path, header, SAMPLE_COLUMNS, problems)
     missing = [c for c in ("sample", "image", "calibration") if c not in header]
     if missing:
         problems.add(path, f"missing column(s) {', '.join(missing)}")

@@ -58,12 +58,11 @@ def load_sample_record(sample: str, sample_dir: Path) -> SampleRecord:
     """A sample's record; a missing or unreadable one is a failed record saying why."""
     path = sample_dir / "sample.json"
     if not path.is_file():
-        return SampleRecord(sample, status="failed", error="no sample record (the image job did not finish)",
-                            crystallinity="no_signal")
+        return SampleRecord(sample, status="failed", error="no sample record (the image job did not finish)")
     try:
         return read_sample_record(path)
     except RingidError as exc:
-        return SampleRecord(sample, status="failed", error=str(exc), crystallinity="no_signal")
+        return SampleRecord(sample, status="failed", error=str(exc))
 
 
 def summary_row(sample: str, sample_dir: Path) -> dict:
