@@ -9,8 +9,9 @@ Calibration sheet (CSV), one of three kinds per row:
 - ``calibration,camera_length_mm,pixel_size_um,voltage_kv``: a nominal camera length.
 
 Any other column is an error (with the nearest known name as a suggestion), except columns of
-the user's own, whose names start with ``x_``. Image paths are absolute or relative to the sheet's folder. Ids must be safe file names
-(letters, digits, ``.``, ``_``, ``-``; not starting with ``.``), since they name output folders.
+the user's own, whose names start with ``x_``. Image paths are absolute or relative to the
+sheet's folder. Ids must be safe file names (letters, digits, ``.``, ``_``, ``-``; not starting
+with ``.``), since they name output folders.
 This module imports only the standard library (it runs when the workflow starts).
 """
 
