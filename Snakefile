@@ -5,11 +5,13 @@
 # batch_size samples per job) -> report.
 
 import sys
+import time
 from pathlib import Path
 
 from snakemake.utils import min_version, validate
 
 min_version("8.0")
+RUN_STARTED = time.time()  # the end-of-run summary tells a summary of this run from an older one
 
 
 configfile: "config/config.yaml"
@@ -34,3 +36,17 @@ rule all:
     input:
         f"{RESULTS}/summary.csv",
         f"{RESULTS}/report.html",
+
+
+onsuccess:
+    from ringid.report.summary import run_summary_text
+
+    print(run_summary_text(RESULTS), file=sys.stderr)
+
+
+onerror:
+    from ringid.report.summary import run_summary_text
+
+    print(run_summary_text(RESULTS, since=RUN_STARTED), file=sys.stderr)
+    print("ringid: some jobs failed (their logs are named above); samples and phases whose jobs "
+          "finished are in the results", file=sys.stderr)

@@ -550,3 +550,37 @@ def test_python_tags_in_a_config_file_are_refused(sheet_folder):
            "--configfile", str(cfg), "-n", "-q", "--cores", "1"]
     res = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
     assert res.returncode != 0 and not marker.exists()
+
+
+def test_a_broken_cif_is_named_in_every_identification_and_at_the_end_of_the_run(tmp_path, capsys):
+    """An answer is only as complete as the library it was searched in: each identification lists
+    the phases whose CIF did not build, the report says so at the top, and the end-of-run text
+    names them. A phase record left behind by a CIF that was removed is not searched."""
+    from ringid.library.store import load_library, unavailable_phases
+    from ringid.report.summary import run_summary_text
+
+    cifs = tmp_path / "cifs"
+    cifs.mkdir()
+    write_cif(cifs, "Au", cif_text())
+    write_cif(cifs, "Cu", cif_text(name="Cu", formula="Cu", cell=(3.6149, 3.6149, 3.6149, 90, 90, 90),
+                                   atoms=(("Cu1", "Cu", 0, 0, 0, 1, 0.0076),)))
+    (cifs / "Broken.cif").write_text("data_broken\n_cell_length_a 4\n", encoding="utf-8")
+    lib = tmp_path / "results" / "library"
+    assert main(["library", "build", str(cifs), "-o", str(lib), "--quiet"]) == 0
+    capsys.readouterr()
+    assert unavailable_phases(lib) == [("Broken", "no atom sites (no _atom_site_fract_x loop)")]
+    # Cu removed from the folder, the index rebuilt: its record stays behind but is not loaded
+    assert main(["library", "index", str(lib), "--phases", "Au", "Broken"]) == 0
+    assert [p.phase for p in load_library(lib)] == ["Au"]
+    text = run_summary_text(tmp_path / "results")
+    assert "ringid: 1 CIF(s) did not build; no sample was compared with them:" in text
+    assert "  Broken: no atom sites (no _atom_site_fract_x loop)" in text.splitlines()
+    # an identification (the rings of Au's own list) records the incomplete library
+    au = load_library(lib)[0]
+    rings = tmp_path / "rings.csv"
+    rings.write_text("g_per_nm,g_sigma_per_nm,fwhm_per_nm,area\n" + "".join(
+        f"{g:.6f},{g * 2e-4:.3g},0.05,{a:.4g}\n" for g, a in zip(au.g_per_nm[:6], au.intensity[:6])), encoding="utf-8")
+    assert main(["identify", str(rings), "--library", str(lib), "-o", str(tmp_path / "ident")]) == 0
+    ident = json.loads((tmp_path / "ident" / "identification.json").read_text(encoding="utf-8"))
+    assert ident["unavailable_phases"] == [{"phase": "Broken", "error": "no atom sites (no _atom_site_fract_x loop)"}]
+    assert "library_incomplete" in ident["flags"]

@@ -78,3 +78,13 @@ def test_unexplained_rings_mismatches_and_rejections_are_said_plainly(tmp_path):
         s1 = next(csv.DictReader(fh))
     assert s1["unexplained_d_angstrom"] == "3.1000;1.9876"
     assert s1["unexplained_intensity_share"] == "0.400" and s1["false_identification_probability"] == "0.0012"
+
+
+def test_a_cif_that_did_not_build_is_named_at_the_top_of_the_report(tmp_path):
+    res = make_results(tmp_path)
+    with open(res / "library" / "index.csv", "a", encoding="utf-8") as fh:
+        fh.write("Bad,,,,,,,,,0,def,failed,the space group cannot be resolved,\n")
+    page = write_report(res, ["s1", "s2", "s3"], ["c1"]).read_text()
+    note = page.index("Library incomplete.")
+    assert note < page.index("<h2>Summary</h2>")
+    assert "<b>Bad</b> (the space group cannot be resolved)" in page[note:note + 400]

@@ -79,8 +79,11 @@ def run(args) -> int:
     result = identify(
         obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None
     )
+    from ringid.library.store import unavailable_phases
+
     write_results(args.output, rows, obs, result, settings,
-                  provenance={"rings": str(args.rings), "library": str(args.library), "n_library_phases": len(library)})
+                  provenance={"rings": str(args.rings), "library": str(args.library), "n_library_phases": len(library)},
+                  unavailable=unavailable_phases(args.library))
     answer = "; ".join(f"{p} ({c:.2f})" for p, c in zip(result.phases, result.confidence)) or "no phase identified"
     print(f"{args.rings}: {answer}; {result.unexplained_rings} unexplained of {len(obs)} rings", file=sys.stderr)
     return 0

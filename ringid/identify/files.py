@@ -55,8 +55,13 @@ def _round_sig(x: float, digits: int = 4) -> float | None:
 
 
 def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRings, result: Identification,
-                  settings: IdentifySettings, provenance: dict | None = None) -> None:
-    """Write ``phases.csv``, ``rings.csv`` (input rows + assignment) and ``identification.json``."""
+                  settings: IdentifySettings, provenance: dict | None = None,
+                  unavailable: list[tuple[str, str]] = ()) -> None:
+    """Write ``phases.csv``, ``rings.csv`` (input rows + assignment) and ``identification.json``.
+
+    ``unavailable``: (phase id, reason) of the library's phases whose CIF did not build, recorded
+    because an answer is only as complete as the library it was searched in.
+    """
     from ringid.core.atomic import format_cell, write_csv, write_json
 
     out = Path(out_dir)
@@ -118,7 +123,8 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
             }
             for i in result.unexplained
         ],
-        "flags": list(result.flags),
+        "flags": list(result.flags) + (["library_incomplete"] if unavailable else []),
+        "unavailable_phases": [{"phase": p, "error": e} for p, e in unavailable],
         "settings": {k: getattr(settings, k) for k in settings.__dataclass_fields__},
         "screening_note": (
             "Phase identification is a screening result; confirm critical assignments by independent means."

@@ -87,6 +87,16 @@ class ImageOptions:
     min_ring_g_per_nm: float = 1.0
 
 
+def measurement_summary(rec) -> str:
+    """One line of a sample record: crystallinity, rings and size (nm), e.g. ``crystalline, 17 rings, 17.7 nm``."""
+    parts = [rec.crystallinity, f"{rec.n_rings} rings"]
+    if rec.crystallite_size_nm:
+        parts.append(f"{rec.crystallite_size_nm:.3g} nm")
+    elif rec.crystallite_size_lower_limit_nm:
+        parts.append(f"> {rec.crystallite_size_lower_limit_nm:.3g} nm")
+    return ", ".join(parts)
+
+
 def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageOptions, log=sys.stderr) -> list:
     """The image job of every sample row (``read_manifest``), one after another; returns their records.
 
@@ -98,7 +108,9 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
     from ringid.jobs.measure import _error_text, measure_sample, write_failed_sample
 
     records = []
-    for row in rows:
+    rows = list(rows)
+    for k, row in enumerate(rows, start=1):
+        where = f"[{k}/{len(rows)}] {row.sample}"
         out = os.path.join(samples_dir, row.sample)
         t0 = time.perf_counter()
         try:
@@ -115,12 +127,12 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
                 rec = SampleRecord(row.sample, status="unwritten", error=_error_text(exc2))
         records.append(rec)
         if rec.status == "ok":
-            print(f"{row.sample}: {rec.crystallinity}, {rec.n_rings} rings ({rec.timings_s['total']:.2f} s)",
-                  file=log, flush=True)
+            print(f"{where}: {measurement_summary(rec)} ({rec.timings_s['total']:.2f} s)", file=log, flush=True)
         elif rec.status == "failed":
-            print(f"ringid: warning: {row.sample}: {rec.error} (recorded as failed)", file=log, flush=True)
+            print(f"{where}: ringid: warning: {rec.error} (recorded as failed)", file=log, flush=True)
         else:
-            print(f"ringid: error: {out}: could not write the sample's files: {rec.error}", file=log, flush=True)
+            print(f"{where}: ringid: error: {out}: could not write the sample's files: {rec.error}", file=log,
+                  flush=True)
     return records
 
 
@@ -136,12 +148,18 @@ def identify_batch(sample_dirs, library, *, window_standard: float, window_nomin
         write_failed_identification,
     )
 
+    from ringid.library.store import unavailable_phases
+
     index = library_index(library, window_standard, window_nominal)  # once: the decoys are the costly part
+    unavailable = unavailable_phases(library_dir) if library_dir else []
     records = []
-    for d in sample_dirs:
+    sample_dirs = list(sample_dirs)
+    for k, d in enumerate(sample_dirs, start=1):
+        where = f"[{k}/{len(sample_dirs)}] {os.path.basename(os.path.normpath(d))}"
         try:
             out = identify_sample(d, index, window_standard=window_standard, window_nominal=window_nominal,
-                                  false_identification_rate=false_identification_rate, library_dir=library_dir)
+                                  false_identification_rate=false_identification_rate, library_dir=library_dir,
+                                  unavailable=unavailable)
         except Exception as exc:  # noqa: BLE001 - one sample's failure never stops the batch
             try:
                 out = write_failed_identification(d, exc)
@@ -149,7 +167,8 @@ def identify_batch(sample_dirs, library, *, window_standard: float, window_nomin
                 out = {"status": "unwritten", "error": _error_text(exc2)}
         records.append(out)
         if out.get("status") == "unwritten":
-            print(f"ringid: error: {d}: could not write the identification files: {out['error']}", file=log, flush=True)
+            print(f"{where}: ringid: error: {d}: could not write the identification files: {out['error']}", file=log,
+                  flush=True)
         else:
-            print(f"{d}: {identification_summary(out)}", file=log, flush=True)
+            print(f"{where}: {identification_summary(out)}", file=log, flush=True)
     return records

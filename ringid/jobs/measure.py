@@ -221,13 +221,15 @@ def _calibrate_row(row, library_dir) -> CalibrationRecord:
 
 def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = WINDOW_STANDARD,
                     window_nominal: float = WINDOW_NOMINAL,
-                    false_identification_rate: float = FALSE_IDENTIFICATION_RATE, library_dir: str = "") -> dict:
+                    false_identification_rate: float = FALSE_IDENTIFICATION_RATE, library_dir: str = "",
+                    unavailable: list[tuple[str, str]] | None = None) -> dict:
     """Identification job of one measured sample: phases.csv, rings.csv, identification.json, overview.png.
 
     ``library`` is a list of PhaseRings or a LibraryIndex (index it once, with
     ``library_index(library, window_standard, window_nominal)``, when identifying many samples).
     A sample whose image job failed gets empty tables and a failed identification record
-    carrying the same error.
+    carrying the same error. ``unavailable``: the phases of the library that failed to build
+    (read from ``library_dir``'s index when None).
     """
     import json
 
@@ -244,7 +246,11 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
         library = library_index(library, window_standard, window_nominal)
     obs, rows = read_observed_rings(d / "measured_rings.csv")
     result = identify(obs, library, settings, g_range_per_nm=rec.g_range_per_nm)
-    write_results(d, rows, obs, result, settings, provenance={"library": library_dir})
+    if unavailable is None:
+        from ringid.library.store import unavailable_phases
+
+        unavailable = unavailable_phases(library_dir) if library_dir else []
+    write_results(d, rows, obs, result, settings, provenance={"library": library_dir}, unavailable=unavailable)
     _overview(d, rec, rows, result, library)
     return json.loads((d / "identification.json").read_text(encoding="utf-8"))
 
@@ -259,7 +265,8 @@ def library_index(library, window_standard: float = WINDOW_STANDARD, window_nomi
 def identification_summary(out: dict) -> str:
     """One line of an identification record: the phases, the failure, or that none was found."""
     if out.get("phases"):
-        return "; ".join(out["phases"])
+        return "; ".join(f"{p} ({c:.2f})" if isinstance(c, (int, float)) else p
+                         for p, c in zip(out["phases"], out.get("confidence") or [None] * len(out["phases"])))
     return "failed: " + out.get("error", "") if out.get("status") == "failed" else "no phase identified"
 
 

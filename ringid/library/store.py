@@ -249,13 +249,39 @@ def build_library(cif_dir: str | os.PathLike, library_dir: str | os.PathLike, *,
     write_index(library_dir, [r["phase"] for r in records])
     return records
 
+def read_index(library_dir: str | os.PathLike) -> list[dict] | None:
+    """The rows of a library's ``index.csv`` (None when there is none)."""
+    import csv
+
+    path = Path(library_dir) / "index.csv"
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            return list(csv.DictReader(fh))
+    except FileNotFoundError:
+        return None
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise RingidError(path, f"unreadable library index ({exc})") from None
+
+
+def unavailable_phases(library_dir: str | os.PathLike) -> list[tuple[str, str]]:
+    """(phase id, reason) of every phase of the library's index whose CIF did not build: the
+    phases an identification against this library could not consider."""
+    rows = read_index(library_dir) or []
+    return [(r["phase"], r.get("error", "") or "failed") for r in rows if r.get("status") != "ok"]
+
+
 def load_library(library_dir: str | os.PathLike) -> list[PhaseRings]:
-    """Every phase of a library folder that built successfully (failed records are skipped)."""
+    """Every phase of a library folder that built successfully (failed records are skipped).
+
+    The phases are those of ``index.csv`` when the folder has one (so a record left behind by a
+    CIF that was since removed is not searched), else every record in the folder.
+    """
+    index = read_index(library_dir)
+    listed = list_phases(library_dir) if index is None else [r["phase"] for r in index]
     phases = []
-    for phase in list_phases(library_dir):
+    for phase in listed:
         if read_phase_record(library_dir, phase).get("status") == "ok":
             phases.append(read_phase_rings(library_dir, phase))
     if not phases:
         raise RingidError(library_dir, "the phase library has no usable phase")
     return phases
-

@@ -123,6 +123,22 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
     return "".join(parts)
 
 
+def _library_note(results: Path) -> list[str]:
+    """A warning box naming the CIFs that did not build: no sample was compared with those phases."""
+    from ringid.library.store import unavailable_phases
+
+    try:
+        failed = unavailable_phases(results / "library")
+    except RingidError:
+        return []
+    if not failed:
+        return []
+    items = "; ".join(f"<b>{_e(p)}</b> ({_e(e)})" for p, e in failed)
+    return [f'<div class="note err"><b>Library incomplete.</b> {len(failed)} CIF(s) could not be built, so no sample '
+            f"was compared with these phases: {items}. A sample made of one of them comes out unidentified or "
+            "as a look-alike; fix the CIF and rerun (the image work is not redone).</div>"]
+
+
 def _identification_notes(ident: dict) -> list[str]:
     """The report's plain sentences about what the library could not explain or would not accept."""
     out = []
@@ -162,6 +178,7 @@ def write_report(
              f'<p class="meta">{len(rows)} samples: {n_ok} ok, {len(rows) - n_ok} failed · '
              + ", ".join(f"{_e(k)}: {v}" for k, v in sorted(counts.items())) + f" · ringid {__version__}</p>",
              f'<div class="note"><b>Screening result.</b> {_e(SCREENING_NOTE)}</div>',
+             *_library_note(results),
              "<h2>Summary</h2>", '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
     cols = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "crystallite_size_nm",
             "n_rings", "unexplained_rings", "ellipticity", "flags", "error"]

@@ -117,3 +117,44 @@ def write_summary(results_dir: str | os.PathLike, samples: list[str]) -> list[di
     rows = [summary_row(s, results / "samples" / s) for s in samples]
     write_csv(results / "summary.csv", SUMMARY_COLUMNS, ([r[c] for c in SUMMARY_COLUMNS] for r in rows))
     return rows
+
+
+def run_summary_text(results_dir: str | os.PathLike, since: float | None = None) -> str:
+    """What a finished run says on the terminal: samples ok and failed (with the reason), CIFs that
+    did not build, and where the report is. Read from ``summary.csv`` and the library index; a
+    summary older than ``since`` (a time stamp, s) is said to be from an earlier run."""
+    import csv
+
+    from ringid.library.store import unavailable_phases
+
+    results = Path(results_dir)
+    lines = []
+    summary = results / "summary.csv"
+    if since is not None and summary.is_file() and summary.stat().st_mtime < since:
+        return (f"ringid: this run wrote no new summary; {summary} and the report are from an earlier run "
+                "(rerun when the failed jobs are fixed)")
+    try:
+        with open(results / "summary.csv", newline="", encoding="utf-8") as fh:
+            rows = list(csv.DictReader(fh))
+    except (OSError, csv.Error):
+        rows = None
+    if rows is None:
+        lines.append(f"ringid: no summary was written ({results / 'summary.csv'} is missing)")
+    else:
+        failed = [r for r in rows if r["status"] != "ok"]
+        identified = sum(bool(r["phases"]) for r in rows)
+        lines.append(f"ringid: {len(rows)} samples: {len(rows) - len(failed)} ok ({identified} with a phase "
+                     f"identified), {len(failed)} failed")
+        lines += [f"  failed: {r['sample']}: {r['error']}" for r in failed]
+    try:
+        cifs = unavailable_phases(results / "library")
+    except RingidError as exc:
+        cifs = []
+        lines.append(f"ringid: {exc}")
+    if cifs:
+        lines.append(f"ringid: {len(cifs)} CIF(s) did not build; no sample was compared with them:")
+        lines += [f"  {phase}: {error}" for phase, error in cifs]
+    if (results / "report.html").is_file():
+        lines.append(f"ringid: report: {results / 'report.html'} (a screening result: confirm critical "
+                     "assignments by independent means)")
+    return "\n".join(lines)

@@ -7,6 +7,7 @@
 # OUTPUTS: samples/{sample}/{measured_rings.csv, profile.csv, thumbnail.npy, sample.json} (image job),
 #   samples/{sample}/{phases.csv, rings.csv, identification.json, overview.png} (identification job)
 # A killed batch job is redone whole (--rerun-incomplete); a failed sample is recorded, not raised.
+# Each job prints one line per sample as it finishes, to its log and to the terminal.
 # The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
 # note, voltage or membership reruns that batch only, and no extra job writes a file for it. A
 # rebuilt library reruns the identification jobs only. Both jobs of a batch are in the group
@@ -51,7 +52,7 @@ for _batch, _members in BATCHES.items():
             " -o {params.samples:q}"
             " --max-pixels {params.max_pixels}"
             " {params.extra}"
-            " > {log:q} 2>&1"
+            " 2>&1 | tee {log:q}"
 
     rule:
         name:
@@ -80,4 +81,4 @@ for _batch, _members in BATCHES.items():
             " --window-standard {params.window_standard}"
             " --window-nominal {params.window_nominal}"
             " --false-identification-rate {params.false_identification_rate}"
-            " > {log:q} 2>&1"
+            " 2>&1 | tee {log:q}"
