@@ -8,10 +8,12 @@ Documented behaviour checked here:
 
 - a run with failed samples exits 0; ``summary.csv`` has one row per sample, the failed ones
   with ``status=failed`` and their one-line error, and ``report.html`` lists every sample;
-- after SIGKILL of the whole process group, a plain rerun stops (incomplete outputs, then the
-  stale lock); ``snakemake --unlock`` and then the same command with ``--rerun-incomplete``
-  finish the run, and the results equal those of the uninterrupted run (CSV byte-identical;
-  JSON identical apart from ``timings_s``), which is also the run-to-run determinism check;
+- after SIGKILL of the whole process group, a plain rerun stops at the stale lock;
+  ``snakemake --unlock`` and then the same command (the workflow's profile asks for
+  ``--rerun-incomplete``) finish the run, and the results equal those of the uninterrupted run
+  (CSV byte-identical; JSON identical apart from ``timings_s``), which is also the run-to-run
+  determinism check;
+- a single job killed by the system records its samples as failed and the run goes on;
 - no output is ever half-written (every file is written to a temporary name and renamed).
 """
 
@@ -306,3 +308,50 @@ def test_4096_float32_pattern_fits_the_declared_image_job_memory(tmp_path):
     peak_mb = peak_kb / 1024  # Linux reports ru_maxrss in KiB
     print(f"4096² float32: peak RSS {peak_mb:.0f} MB of {declared_mb} MB declared, {rec['timings_s']['total']:.1f} s")
     assert peak_mb < declared_mb
+
+
+@pytest.mark.slow
+def test_a_job_killed_for_memory_fails_its_samples_and_the_report_is_still_written(inputs, tmp_path):
+    """The system killing an image job (SIGKILL, as the out-of-memory killer does) must not stop
+    the run: the job's fallback records its samples as failed with the reason, the other batches
+    go on, and the summary and report are written (exit 0). The kill is simulated by a `ringid`
+    earlier on PATH that kills itself when its batch holds one chosen sample."""
+    import yaml
+
+    base = inputs["base"]
+    victim = "np_CeO2_batch_B"
+    rows = [r for r in csv.DictReader(open(base / "samples.csv", newline="", encoding="utf-8"))
+            if r["sample"] in ("blank_hole", victim, "np_CeO2_batch_C")]
+    sheet = base / "three.csv"
+    with open(sheet, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")
+        w.writeheader()
+        w.writerows(rows)
+    shim = tmp_path / "bin"
+    shim.mkdir()
+    (shim / "ringid").write_text(f"""#!/bin/bash
+if [[ "$1 $2" == "batch measure" && " $* " != *" --after-crash "* ]]; then
+  manifest=$(cat)
+  if [[ "$manifest" == *{victim}* ]]; then kill -9 $$; fi
+  printf '%s' "$manifest" | exec "{sys.executable}" -m ringid "$@"
+fi
+exec "{sys.executable}" -m ringid "$@"
+""", encoding="utf-8")
+    (shim / "ringid").chmod(0o755)
+    work = tmp_path / "work"
+    work.mkdir()
+    (work / "config.yaml").write_text(yaml.safe_dump({
+        "samples": str(sheet), "calibrations": str(base / "calibrations.csv"), "phases_dir": str(base / "phases"),
+        "results_dir": str(work / "results"), "batch_size": 1}), encoding="utf-8")
+    env = dict(os.environ, PATH=f"{shim}{os.pathsep}{os.environ['PATH']}")
+    res = subprocess.run(_snakemake_cmd(work), capture_output=True, text=True, timeout=600, env=env)
+    assert res.returncode == 0, res.stdout[-3000:] + res.stderr[-3000:]
+    with open(work / "results" / "summary.csv", newline="", encoding="utf-8") as fh:
+        summary = {r["sample"]: r for r in csv.DictReader(fh)}
+    assert summary[victim]["status"] == "failed", summary[victim]
+    assert "killed by SIGKILL (e.g. by the system for lack of memory)" in summary[victim]["error"]
+    assert f"logs/batches/measure_{victim}.log" in summary[victim]["error"]
+    assert summary["np_CeO2_batch_C"]["status"] == "ok" and summary["np_CeO2_batch_C"]["phases"] == "CeO2"
+    assert (work / "results" / "report.html").is_file()
+    assert f"failed: {victim}: the job stopped before this item was written" in res.stderr
+    _assert_nothing_half_written(work / "results")

@@ -12,6 +12,8 @@ on. Exit 0 when every sample's files were written (failed samples included).
 
 from __future__ import annotations
 
+import sys
+
 from ringid.identify.windows import FALSE_IDENTIFICATION_RATE, WINDOW_NOMINAL, WINDOW_STANDARD
 
 
@@ -33,6 +35,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
         "-o", "--output", required=True, metavar="SAMPLES_DIR", help="each sample goes to SAMPLES_DIR/{sample}"
     )
     add_image_options(p)
+    _add_after_crash(p)
     p.set_defaults(func=run_measure)
 
     p = sub.add_parser("identify", help="identification of several measured sample folders")
@@ -45,7 +48,16 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--false-identification-rate", type=float, default=FALSE_IDENTIFICATION_RATE, metavar="RATE",
                    help="report a phase only when the chance that an absent phase scores as well is below RATE, "
                         "controlled over the phases of a sample (default %(default)s)")
+    _add_after_crash(p)
     p.set_defaults(func=run_identify)
+
+
+def _add_after_crash(p) -> None:
+    p.add_argument("--after-crash", type=int, metavar="STATUS",
+                   help="do no work: record every sample this job's first run left unwritten as failed, that run "
+                        "having died with shell exit STATUS (the workflow's fallback, so one crash never stops the "
+                        "report)")
+    p.add_argument("--log", default="", metavar="LOG", help="the job's log, named in those records")
 
 
 def run_measure(args) -> int:
@@ -53,6 +65,14 @@ def run_measure(args) -> int:
 
     options = ImageOptions(max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
                            min_ring_g_per_nm=args.min_ring_g_per_nm)
+    if args.after_crash is not None:
+        from ringid.jobs.batch import crash_reason, record_unfinished_measurements
+
+        done = record_unfinished_measurements(read_manifest(args.manifest), args.output,
+                                              crash_reason(args.after_crash, args.log))
+        print(f"ringid: warning: the image job died; {len(done)} sample(s) recorded as failed: {', '.join(done)}",
+              file=sys.stderr)
+        return 0
     records = measure_batch(read_manifest(args.manifest), args.calibrations_dir, args.output, options)
     return 1 if any(r.status == "unwritten" for r in records) else 0
 
@@ -62,6 +82,13 @@ def run_identify(args) -> int:
     from .identify import check_rate
     from ringid.library.store import load_library
 
+    if args.after_crash is not None:
+        from ringid.jobs.batch import crash_reason, record_unfinished_identifications
+
+        done = record_unfinished_identifications(args.sample_dirs, crash_reason(args.after_crash, args.log))
+        print(f"ringid: warning: the identification job died; {len(done)} sample(s) recorded as failed",
+              file=sys.stderr)
+        return 0
     library = load_library(args.library)
     records = identify_batch(args.sample_dirs, library, window_standard=args.window_standard,
                              window_nominal=args.window_nominal, library_dir=str(args.library),

@@ -14,6 +14,10 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--sheet", required=True, metavar="CSV", help="calibration sheet")
     p.add_argument("--library", metavar="LIB", help="phase library folder (for standard films)")
     p.add_argument("-o", "--output", required=True, metavar="CAL.json", help="calibration record to write")
+    p.add_argument("--after-crash", type=int, metavar="STATUS",
+                   help="do no work: record the calibration as failed when this job's first run died with shell "
+                        "exit STATUS before writing it (the workflow's fallback)")
+    p.add_argument("--log", default="", metavar="LOG", help="the job's log, named in that record")
     p.set_defaults(func=run)
 
 
@@ -27,6 +31,19 @@ def run(args) -> int:
     rows = read_calibrations(args.sheet)
     if args.calibration not in rows:
         raise RingidError(args.sheet, f"no calibration {args.calibration!r} in the sheet")
+    if args.after_crash is not None:
+        import os
+
+        from ringid.core.records import CalibrationRecord, write_calibration_record
+        from ringid.jobs.batch import crash_reason
+
+        if not os.path.isfile(args.output):
+            row = rows[args.calibration]
+            write_calibration_record(args.output, CalibrationRecord(
+                row.calibration, kind=row.kind, status="failed", error=crash_reason(args.after_crash, args.log),
+                voltage_kv=row.voltage_kv))
+            print(f"ringid: warning: calibration {args.calibration}: the job died; recorded as failed", file=sys.stderr)
+        return 0
     rec = make_calibration(rows[args.calibration], args.output, library_dir=args.library)
     if rec.status == "ok":
         print(f"{args.calibration}: K = {rec.camera_constant_A_px:.4f} Å·px ({rec.kind})", file=sys.stderr)

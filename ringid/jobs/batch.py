@@ -172,3 +172,49 @@ def identify_batch(sample_dirs, library, *, window_standard: float, window_nomin
         else:
             print(f"{where}: {identification_summary(out)}", file=log, flush=True)
     return records
+
+
+def crash_reason(status: int, log: str = "") -> str:
+    """Why a job stopped, from its shell exit status (128 + N: killed by signal N), for the failed
+    records of the items it left unwritten; ``log`` names the job's log."""
+    import signal
+
+    if status > 128:
+        try:
+            name = signal.Signals(status - 128).name
+        except ValueError:
+            name = f"signal {status - 128}"
+        what = f"killed by {name}" + (" (e.g. by the system for lack of memory)" if name == "SIGKILL" else "")
+    else:
+        what = f"it exited with status {status}"
+    return f"the job stopped before this item was written ({what})" + (f"; see {log}" if log else "")
+
+
+def record_unfinished_measurements(rows, samples_dir: str, reason: str) -> list[str]:
+    """After an image job died: a failed sample folder (with ``reason``) for every sample of its
+    manifest rows that has no ``sample.json``; the ids recorded."""
+    from ringid.core.errors import RingidError
+    from ringid.jobs.measure import write_failed_sample
+
+    done = []
+    for row in rows:
+        out = os.path.join(samples_dir, row.sample)
+        if not os.path.isfile(os.path.join(out, "sample.json")):
+            write_failed_sample(out, RingidError(None, reason), sample=row.sample, image=row.image,
+                                calibration_id=row.calibration, note=row.note)
+            done.append(row.sample)
+    return done
+
+
+def record_unfinished_identifications(sample_dirs, reason: str) -> list[str]:
+    """After an identification job died: failed identification files (with ``reason``) for every
+    sample folder without ``identification.json``; the folders recorded."""
+    from ringid.core.errors import RingidError
+    from ringid.jobs.measure import write_failed_identification
+
+    done = []
+    for d in sample_dirs:
+        if not os.path.isfile(os.path.join(d, "identification.json")):
+            write_failed_identification(d, RingidError(None, reason))
+            done.append(d)
+    return done

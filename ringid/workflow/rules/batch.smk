@@ -7,7 +7,9 @@
 # OUTPUTS: samples/{sample}/{measured_rings.csv, profile.csv, thumbnail.npy, sample.json} (image job),
 #   samples/{sample}/{phases.csv, rings.csv, identification.json, overview.png} (identification job)
 # A killed batch job is redone whole (--rerun-incomplete); a failed sample is recorded, not raised.
-# Each job prints one line per sample as it finishes, to its log and to the terminal.
+# Each job prints one line per sample as it finishes, to its log and to the terminal. A job that
+# dies (killed for memory, say) is followed by its own command with --after-crash, which records
+# every sample it left unwritten as failed with the reason, so the report is still written.
 # The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
 # note, voltage or membership reruns that batch only, and no extra job writes a file for it. A
 # rebuilt library reruns the identification jobs only. Both jobs of a batch are in the group
@@ -53,6 +55,9 @@ for _batch, _members in BATCHES.items():
             " --max-pixels {params.max_pixels}"
             " {params.extra}"
             " 2>&1 | tee {log:q}"
+            " || {{ status=$?; printf '%s' {params.manifest:q} | ringid batch measure -"
+            " --calibrations-dir {params.calibrations:q} -o {params.samples:q}"
+            " --after-crash $status --log {log:q} 2>&1 | tee -a {log:q}; }}"
 
     rule:
         name:
@@ -82,3 +87,5 @@ for _batch, _members in BATCHES.items():
             " --window-nominal {params.window_nominal}"
             " --false-identification-rate {params.false_identification_rate}"
             " 2>&1 | tee {log:q}"
+            " || {{ status=$?; ringid batch identify {params.dirs:q} --library {LIB:q}"
+            " --after-crash $status --log {log:q} 2>&1 | tee -a {log:q}; }}"

@@ -1,5 +1,6 @@
 # INPUTS: calibration sheet row (+ standard film image and the standard's ring list)
-# OUTPUTS: calibrations/{calibration}.json (status ok or failed with its reason)
+# OUTPUTS: calibrations/{calibration}.json (status ok or failed with its reason; a job that died is
+#   recorded as failed by its own command with --after-crash)
 
 
 rule calibration:
@@ -22,3 +23,5 @@ rule calibration:
         " --library {LIB:q}"
         " -o {output:q}"
         " > {log:q} 2>&1"
+        " || {{ status=$?; ringid calibration {wildcards.calibration:q} --sheet {input.sheet:q} -o {output:q}"
+        " --after-crash $status --log {log:q} >> {log:q} 2>&1; }}"
