@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ringid.image.ellipse import compose_distortion, distortion_matrix, fit_sector_positions, undistortion_matrix
+from ringid.image.mask import block_mean
 from ringid.core.errors import RingidError
 from ringid.core.model import Geometry
 
@@ -90,24 +91,6 @@ class GeometryFit:
     max_radius_px: float = math.nan
     flags: tuple[str, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
-
-
-def block_mean(data: np.ndarray, valid: np.ndarray | None, block: int) -> tuple[np.ndarray, np.ndarray]:
-    """Mean over block×block tiles of the valid pixels, and the valid fraction per tile."""
-    ny, nx = data.shape
-    my, mx = ny // block, nx // block
-    d = data[: my * block, : mx * block]
-    # sum the contiguous axis first (fast), in float32 (tile sums stay exact well past 10⁶ counts)
-    if valid is None:
-        s = d.astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
-        n = np.full(s.shape, float(block * block))
-    else:
-        v = valid[: my * block, : mx * block]
-        s = np.where(v, d, np.float32(0)).astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
-        n = v.reshape(my, block, mx, block).sum(3, dtype=np.int32).sum(1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(n > 0, s / np.maximum(n, 1), 0.0)
-    return mean.astype(np.float32), (n / (block * block)).astype(np.float32)
 
 
 def coarse_center(data: np.ndarray, mask: np.ndarray | None = None, *, target_px: int = 256) -> CoarseCenter:

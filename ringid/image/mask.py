@@ -165,6 +165,24 @@ def border_mask(data: np.ndarray, border_px: int = 2) -> np.ndarray:
     return m
 
 
+def block_mean(data: np.ndarray, valid: np.ndarray | None, block: int) -> tuple[np.ndarray, np.ndarray]:
+    """Mean over block×block tiles of the valid pixels, and the valid fraction per tile."""
+    ny, nx = data.shape
+    my, mx = ny // block, nx // block
+    d = data[: my * block, : mx * block]
+    # sum the contiguous axis first (fast), in float32 (tile sums stay exact well past 10⁶ counts)
+    if valid is None:
+        s = d.astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
+        n = np.full(s.shape, float(block * block))
+    else:
+        v = valid[: my * block, : mx * block]
+        s = np.where(v, d, np.float32(0)).astype(np.float32, copy=False).reshape(my, block, mx, block).sum(3).sum(1)
+        n = v.reshape(my, block, mx, block).sum(3, dtype=np.int32).sum(1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(n > 0, s / np.maximum(n, 1), 0.0)
+    return mean.astype(np.float32), (n / (block * block)).astype(np.float32)
+
+
 def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: float, center_y_px: float, *,
                    dark_fraction: float = 0.15, block: int | None = None) -> np.ndarray:
     """Shadow of the beam stop: the dark connected region that reaches the direct beam.
@@ -185,8 +203,6 @@ def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: floa
     bool array, True in the shadow (empty when there is no beam stop).
     """
     from scipy import ndimage
-
-    from ringid.image.center import block_mean
 
     ny, nx = data.shape
     if block is None:
