@@ -518,26 +518,64 @@ def _last_covered_radius(rad: np.ndarray, coverage_min: float = 0.3) -> float:
     return float(r[good[-1]]) if good.size else 0.0
 
 
-def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoints:
-    """Background-subtracted centroid of each ring in each azimuth sector (vectorised over all of them)."""
+@dataclass(frozen=True)
+class _RingWindows:
+    """Radial window of each ring for the sector measurement, on the SECTOR_STEP_PX grid.
+
+    half: window half-width (px), 3 FWHM but never past half-way to a neighbouring ring, at least 2 px;
+    n_bins: radial bins of the widest window; ring_bins: bins inside each ring's own window; edge_bins:
+    bins at each end of a window that measure the background (a fifth of the window, at least 2).
+    """
+
+    half: np.ndarray
+    n_bins: int
+    ring_bins: np.ndarray
+    edge_bins: np.ndarray
+
+    @classmethod
+    def around(cls, radii: np.ndarray, fwhm: np.ndarray) -> _RingWindows:
+        """Windows around the ring radii ``radii`` with widths ``fwhm`` (undistorted px)."""
+        gaps = np.diff(radii)
+        left_gap = np.concatenate([[np.inf], gaps])
+        right_gap = np.concatenate([gaps, [np.inf]])
+        half = np.minimum(3.0 * fwhm, 0.5 * np.minimum(left_gap, right_gap))
+        half = np.maximum(half, 2.0)
+        n_bins = int(math.ceil(2 * half.max() / SECTOR_STEP_PX)) + 1
+        ring_bins = np.ceil(2 * half / SECTOR_STEP_PX).astype(int)
+        edge_bins = np.maximum((0.2 * ring_bins).astype(int), 2)
+        return cls(half=half, n_bins=n_bins, ring_bins=ring_bins, edge_bins=edge_bins)
+
+
+@dataclass(frozen=True)
+class _SectorBins:
+    """Pixels binned by (ring, azimuth sector, radial bin): arrays of shape (n_rings, n_sectors, n_bins).
+
+    count: pixels per bin; total: sum of their values (counts); mean: mean value; radius: mean undistorted
+    radius of the pixels (px, exact, not the bin centre); variance: Poisson variance of the mean (counts²).
+    mean, radius and variance are NaN in empty bins.
+    """
+
+    count: np.ndarray
+    total: np.ndarray
+    mean: np.ndarray
+    radius: np.ndarray
+    variance: np.ndarray
+
+
+def _sector_bins(ux, uy, vals, radii, windows: _RingWindows, n_sectors: int) -> _SectorBins:
+    """Bin the pixels at undistorted offsets (ux, uy) (px) with values ``vals`` into the ring windows, split
+    into ``n_sectors`` azimuth sectors from −π; pixels outside every window are left out (a look-up table on
+    the radius, then one bincount per sum)."""
     n_rings = radii.size
-    # window half-width: 3 FWHM, but never past half-way to a neighbouring ring
-    gaps = np.diff(radii)
-    left_gap = np.concatenate([[np.inf], gaps])
-    right_gap = np.concatenate([gaps, [np.inf]])
-    half = np.minimum(3.0 * fwhm, 0.5 * np.minimum(left_gap, right_gap))
-    half = np.maximum(half, 2.0)
-    step = SECTOR_STEP_PX
-    n_b = int(math.ceil(2 * half.max() / step)) + 1
+    half, n_b, step = windows.half, windows.n_bins, SECTOR_STEP_PX
     rad = np.sqrt(ux * ux + uy * uy)
-    lut_step = step
-    lut_n = int((radii.max() + half.max()) / lut_step) + 2
+    lut_n = int((radii.max() + half.max()) / step) + 2
     lut = np.full(lut_n, -1, np.int32)
     for k in range(n_rings):
-        lo = int(max((radii[k] - half[k]) / lut_step, 0))
-        hi = int(min((radii[k] + half[k]) / lut_step, lut_n - 1))
+        lo = int(max((radii[k] - half[k]) / step, 0))
+        hi = int(min((radii[k] + half[k]) / step, lut_n - 1))
         lut[lo : hi + 1] = k
-    ri = np.minimum((rad / lut_step).astype(np.int64), lut_n - 1)
+    ri = np.minimum((rad / step).astype(np.int64), lut_n - 1)
     ring = lut[ri]
     inside = np.flatnonzero(ring >= 0)
     ring = ring[inside].astype(np.int64)
@@ -555,30 +593,41 @@ def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoin
     rsum = np.bincount(key, weights=rad_in, minlength=size).reshape(n_rings, n_sectors, n_b)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = tot / cnt
-        rpos = rsum / cnt  # mean radius of the pixels in each bin (exact, not the bin centre)
+        rpos = rsum / cnt
         var = np.maximum(mean, 1.0) / cnt
+    return _SectorBins(count=cnt, total=tot, mean=mean, radius=rpos, variance=var)
 
-    bins = np.arange(n_b)
-    nb_ring = np.ceil(2 * half / step).astype(int)  # bins actually inside each ring's window
-    in_win = bins[None, :] < nb_ring[:, None]  # (n_rings, n_b)
-    edge_n = np.maximum((0.2 * nb_ring).astype(int), 2)
-    left = in_win & (bins[None, :] < edge_n[:, None])
-    right = in_win & (bins[None, :] >= (nb_ring - edge_n)[:, None])
+
+def _masked_mean(a: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean over the last axis of the finite entries of ``a`` (n_rings, n_sectors, n_bins) in the bins ``m``
+    (n_rings, n_bins), and how many there were."""
+    m3 = np.broadcast_to(m[:, None, :], a.shape) & np.isfinite(a)
+    num = np.where(m3, a, 0).sum(-1)
+    den = m3.sum(-1)
+    return num / np.maximum(den, 1), den
+
+
+def _sector_centroids(bins: _SectorBins, radii, fwhm, windows: _RingWindows, n_sectors: int,
+                      geometry: Geometry) -> SectorPoints:
+    """Centroid (px) of each ring in each sector above a linear background through the window's edge bins,
+    over the core within 1.5 FWHM of the ring radius; kept when the core is complete, the peak area exceeds
+    5 σ and the centroid lies inside the core."""
+    half, step = windows.half, SECTOR_STEP_PX
+    bin_no = np.arange(windows.n_bins)
+    nb_ring, edge_n = windows.ring_bins, windows.edge_bins
+    in_win = bin_no[None, :] < nb_ring[:, None]  # (n_rings, n_b)
+    left = in_win & (bin_no[None, :] < edge_n[:, None])
+    right = in_win & (bin_no[None, :] >= (nb_ring - edge_n)[:, None])
     cen_half = np.minimum(1.5 * fwhm, half)
     r_lo = (radii - half)[:, None]
-    rcent = r_lo + (bins[None, :] + 0.5) * step  # (n_rings, n_b) nominal bin centres
+    rcent = r_lo + (bin_no[None, :] + 0.5) * step  # (n_rings, n_b) nominal bin centres
     core = np.abs(rcent - radii[:, None]) <= cen_half[:, None]
 
-    def masked_mean(a, m):
-        m3 = np.broadcast_to(m[:, None, :], a.shape) & np.isfinite(a)
-        num = np.where(m3, a, 0).sum(-1)
-        den = m3.sum(-1)
-        return num / np.maximum(den, 1), den
-
-    yl, nl = masked_mean(mean, left)
-    yr, nr = masked_mean(mean, right)
-    xl, _ = masked_mean(rpos, left)
-    xr, _ = masked_mean(rpos, right)
+    mean, rpos, var = bins.mean, bins.radius, bins.variance
+    yl, nl = _masked_mean(mean, left)
+    yr, nr = _masked_mean(mean, right)
+    xl, _ = _masked_mean(rpos, left)
+    xr, _ = _masked_mean(rpos, right)
     slope = (yr - yl) / np.where(xr - xl != 0, xr - xl, 1.0)
     background = yl[..., None] + slope[..., None] * (rpos - xl[..., None])
     y = mean - background
@@ -598,21 +647,27 @@ def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoin
     good &= np.abs(centroid) < cen_half[:, None]
     k_idx, s_idx = np.nonzero(good)
     psi_c = -np.pi + (s_idx + 0.5) * (2 * np.pi / n_sectors)
-    points = SectorPoints(geometry=geometry, ring_index=k_idx, azimuth_rad=psi_c,
-                          radius_px=radii[k_idx] + centroid[k_idx, s_idx],
-                          sigma_px=np.sqrt(var_c[k_idx, s_idx]))
-    # ring widths in this frame, from the all-sector profile: half-maximum width above a linear background
+    return SectorPoints(geometry=geometry, ring_index=k_idx, azimuth_rad=psi_c,
+                        radius_px=radii[k_idx] + centroid[k_idx, s_idx],
+                        sigma_px=np.sqrt(var_c[k_idx, s_idx]))
+
+
+def _ring_widths(bins: _SectorBins, windows: _RingWindows) -> np.ndarray:
+    """FWHM (px) of each ring in the all-sector profile of its window: the half-maximum width above a linear
+    background through the edge bins, interpolated between bins; NaN when the profile has no positive peak,
+    does not fall to half maximum inside the window, or has fewer than 6 bins with pixels."""
     with np.errstate(invalid="ignore", divide="ignore"):
-        prof = tot.sum(1) / cnt.sum(1)
+        prof = bins.total.sum(1) / bins.count.sum(1)
+    n_rings = prof.shape[0]
     widths = np.full(n_rings, np.nan)
     for k in range(n_rings):
-        y = prof[k, : nb_ring[k]]
+        y = prof[k, : windows.ring_bins[k]]
         fin = np.isfinite(y)
         if fin.sum() < 6:
             continue
         if not fin.all():  # an empty edge bin (the window is cut on the 0.25 px grid)
             y = np.interp(np.arange(y.size), np.flatnonzero(fin), y[fin])
-        e = edge_n[k]
+        e = windows.edge_bins[k]
         base = np.linspace(y[:e].mean(), y[-e:].mean(), y.size)
         z = y - base
         i0 = int(np.argmax(z))
@@ -629,8 +684,21 @@ def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> SectorPoin
             continue
         left = lo - (z[lo] - half_max) / (z[lo] - z[lo - 1])
         right = hi + (z[hi] - half_max) / (z[hi] - z[hi + 1])
-        widths[k] = (right - left) * step
-    return points, widths
+        widths[k] = (right - left) * SECTOR_STEP_PX
+    return widths
+
+
+def _sector_points(ux, uy, vals, radii, fwhm, n_sectors, geometry) -> tuple[SectorPoints, np.ndarray]:
+    """Background-subtracted centroid of each ring in each azimuth sector (vectorised over all of them), and
+    each ring's FWHM in this frame (px, NaN where not measured).
+
+    ux, uy: pixel offsets from the centre in the undistorted frame of ``geometry`` (px); vals: their values
+    (counts); radii, fwhm: ring radii and widths (undistorted px).
+    """
+    windows = _RingWindows.around(radii, fwhm)
+    bins = _sector_bins(ux, uy, vals, radii, windows, n_sectors)
+    points = _sector_centroids(bins, radii, fwhm, windows, n_sectors, geometry)
+    return points, _ring_widths(bins, windows)
 
 
 def refine_sample_center(data: np.ndarray, mask: np.ndarray | None, calibration: Geometry, *,
