@@ -294,28 +294,11 @@ def detect_rings(
     -------
     Candidates, strongest first (at most ``max_components``).
     """
-    from scipy.signal import argrelmax, find_peaks
-
     g = np.asarray(g_per_nm, dtype=float)
     step = float(np.median(np.diff(g)))
-    sigma = np.asarray(sigma, dtype=float)
-    ok = np.isfinite(sigma) & (sigma > 0) & np.isfinite(residual)
-    weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
-    r = np.where(ok, residual, 0.0).astype(float)
     scales = _scales_bins(step, fwhm_min_per_nm, fwhm_max_per_nm)
-    snr, amp = _matched_filter(weight, scales).snr_and_amplitude(r * weight)
-    finite = np.isfinite(snr)
-    floor = float(np.min(snr[finite])) if finite.any() else 0.0
-    finite_snr = np.where(finite, snr, floor)
-    # every local maximum, for following a feature through the scales
-    maxima = [argrelmax(finite_snr[k], order=1, mode="clip")[0] for k in range(len(scales))]
-    # starting points: maxima above the threshold that stand out from their surroundings by a
-    # significant dip (prominence ≥ PEAK_PROMINENCE_SIGMA in SNR units; T_s has unit noise), so
-    # the noise ripples on top of a strong ring or a halo are not taken for separate rings
-    starts = [
-        find_peaks(finite_snr[k], height=threshold_sigma, prominence=PEAK_PROMINENCE_SIGMA)[0]
-        for k in range(len(scales))
-    ]
+    snr, amp = _filter_responses(residual, sigma, scales)
+    maxima, starts = _scale_maxima(snr, threshold_sigma)
     taken: list[int] = []  # positions (bins) of accepted candidates
     ends: list[tuple[int, int, int]] = []  # (start scale, end scale, end bin) of each accepted candidate
     found: list[Candidate] = []
@@ -324,27 +307,8 @@ def detect_rings(
         for i in idx[np.argsort(-snr[k, idx])]:
             if any(abs(i - t) < half for t in taken):
                 continue
-            # follow the maximum up through the scales while its SNR grows
-            kk, ii = k, i
-            while kk + 1 < len(scales):
-                nxt = maxima[kk + 1]
-                near = nxt[np.abs(nxt - ii) <= max(1.0, 0.5 * FWHM_PER_SIGMA * scales[kk + 1])]
-                if near.size == 0:
-                    break
-                j = near[np.argmax(snr[kk + 1, near])]
-                if snr[kk + 1, j] <= snr[kk, ii]:
-                    break
-                # a maximum that drifts away from where it started by more than its starting
-                # FWHM is being taken over by a neighbour: the feature itself ended
-                if abs(j - i) > max(1.0, FWHM_PER_SIGMA * scales[k]):
-                    break
-                kk, ii = kk + 1, j
-            # a fine maximum that grows into a feature at least 3× broader, where another
-            # accepted one already ended, is a shoulder of that broad feature, not a new ring
-            # and a maximum starting at a coarser scale that ends where one resolved at a finer
-            # scale ended is the blend of resolved ones
-            same_end = [ks for ks, ke, ie in ends if ke == kk and abs(ie - ii) < 0.5 * FWHM_PER_SIGMA * scales[kk]]
-            if same_end and (kk - k >= SHOULDER_SCALE_STEPS or min(same_end) < k):
+            kk, ii = _followed_up(snr, maxima, scales, k, i)
+            if _part_of_accepted(ends, scales, k, kk, ii):
                 continue
             taken.append(i)
             ends.append((k, kk, ii))
@@ -359,6 +323,64 @@ def detect_rings(
             )
     found.sort(key=lambda c: -c.snr)
     return found[:max_components]
+
+
+def _filter_responses(residual, sigma, scales) -> tuple[np.ndarray, np.ndarray]:
+    """Matched-filter SNR T_s and amplitude (profile units) of ``residual`` at each scale (bins), shape
+    (n_scales, n_g); weights 1/σ², bins with non-finite or non-positive σ or a non-finite residual left out."""
+    sigma = np.asarray(sigma, dtype=float)
+    ok = np.isfinite(sigma) & (sigma > 0) & np.isfinite(residual)
+    weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
+    r = np.where(ok, residual, 0.0).astype(float)
+    return _matched_filter(weight, scales).snr_and_amplitude(r * weight)
+
+
+def _scale_maxima(snr: np.ndarray, threshold_sigma: float) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """Per scale: every local maximum of the SNR (for following a feature through the scales), and the
+    starting points, the maxima above ``threshold_sigma`` that stand out from their surroundings by a
+    significant dip (prominence ≥ PEAK_PROMINENCE_SIGMA in SNR units; T_s has unit noise), so the noise
+    ripples on top of a strong ring or a halo are not taken for separate rings. Bin indices."""
+    from scipy.signal import argrelmax, find_peaks
+
+    finite = np.isfinite(snr)
+    floor = float(np.min(snr[finite])) if finite.any() else 0.0
+    finite_snr = np.where(finite, snr, floor)
+    maxima = [argrelmax(finite_snr[k], order=1, mode="clip")[0] for k in range(snr.shape[0])]
+    starts = [
+        find_peaks(finite_snr[k], height=threshold_sigma, prominence=PEAK_PROMINENCE_SIGMA)[0]
+        for k in range(snr.shape[0])
+    ]
+    return maxima, starts
+
+
+def _followed_up(snr, maxima, scales, k: int, i: int) -> tuple[int, int]:
+    """(scale, bin) where the maximum at scale ``k``, bin ``i`` stops: followed up through the scales to the
+    nearest maximum of the next scale while its SNR grows and it stays within its starting FWHM of ``i``."""
+    kk, ii = k, i
+    while kk + 1 < len(scales):
+        nxt = maxima[kk + 1]
+        near = nxt[np.abs(nxt - ii) <= max(1.0, 0.5 * FWHM_PER_SIGMA * scales[kk + 1])]
+        if near.size == 0:
+            break
+        j = near[np.argmax(snr[kk + 1, near])]
+        if snr[kk + 1, j] <= snr[kk, ii]:
+            break
+        # a maximum that drifts away from where it started by more than its starting
+        # FWHM is being taken over by a neighbour: the feature itself ended
+        if abs(j - i) > max(1.0, FWHM_PER_SIGMA * scales[k]):
+            break
+        kk, ii = kk + 1, j
+    return kk, ii
+
+
+def _part_of_accepted(ends, scales, k: int, kk: int, ii: int) -> bool:
+    """Whether a maximum starting at scale ``k`` and ending at (``kk``, ``ii``) belongs to accepted ones
+    (``ends``: their start scale, end scale and end bin): a fine maximum that grows into a feature at least
+    SHOULDER_SCALE_STEPS scales broader, where another accepted one already ended, is a shoulder of that broad
+    feature, not a new ring; and a maximum starting at a coarser scale that ends where one resolved at a finer
+    scale ended is the blend of resolved ones."""
+    same_end = [ks for ks, ke, ie in ends if ke == kk and abs(ie - ii) < 0.5 * FWHM_PER_SIGMA * scales[kk]]
+    return bool(same_end) and (kk - k >= SHOULDER_SCALE_STEPS or min(same_end) < k)
 
 
 # ---------------------------------------------------------------- fitting
