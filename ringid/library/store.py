@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from ringid import __version__
-from ringid.core.atomic import write_csv, write_json
+from ringid.core.atomic import format_cell, write_csv, write_json
 from ringid.core.errors import RingidError
 from ringid.core.model import PhaseRings
 from ringid.library.structure import (
@@ -109,7 +109,7 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
         paths["reflections"],
         ["h", "k", "l", "d_angstrom", "f_squared", "ring"],
         (
-            [int(x[0]), int(x[1]), int(x[2]), f"{di:.6f}", f"{fi:.6g}", int(ri)]
+            [int(x[0]), int(x[1]), int(x[2]), format_cell(di, ".6f"), format_cell(fi, ".6g"), int(ri)]
             for x, di, fi, ri in zip(hkl, d, f2, rid)
         ),
     )
@@ -132,11 +132,14 @@ def _site_table(crystal) -> list[dict]:
 
 def write_rings_csv(path, rings: PhaseRings) -> None:
     f2 = rings.meta.get("f_squared_sum", np.full(len(rings.d_angstrom), np.nan))
+    # f_squared_sum keeps its own format: a ring list without the sums is written "nan" there
+    # (format_cell would write ""; read_phase_rings takes either as NaN)
     write_csv(
         path,
         RING_COLUMNS,
         (
-            [f"{d:.6f}", f"{10.0 / d:.6f}", f"{i:.6g}", int(m), h, "true" if dd else "false", f"{f:.6g}"]
+            [format_cell(d, ".6f"), format_cell(10.0 / d, ".6f"), format_cell(i, ".6g"), int(m), h,
+             format_cell(bool(dd)), f"{f:.6g}"]
             for d, i, m, h, dd, f in zip(
                 rings.d_angstrom, rings.intensity, rings.multiplicity, rings.hkl, rings.double_diffraction, f2
             )

@@ -1436,26 +1436,13 @@ RINGS_CSV_COLUMNS = [
 PROFILE_CSV_COLUMNS = ["g_per_nm", "intensity", "sigma", "background", "model"]
 
 
-def _fmt(x, digits=6):
-    if x is None:
-        return ""
-    if isinstance(x, str):
-        return x
-    x = float(x)
-    if math.isnan(x):
-        return ""
-    if math.isinf(x):
-        return "inf" if x > 0 else "-inf"
-    return f"{x:.{digits}g}"
-
-
 def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
     """Write ``rings.csv`` (docs/design.md contract) atomically, one row per ring, sorted by g.
 
     assignments : optional sequence (one per ring) of ``(phase, hkl)`` pairs or None, filled by
         phase identification; the ``phase`` and ``hkl`` columns are empty without it.
     """
-    from ringid.core.atomic import write_csv
+    from ringid.core.atomic import format_cell, write_csv
 
     n = len(analysis.rings)
     if assignments is not None and len(assignments) != n:
@@ -1467,23 +1454,23 @@ def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
         phase, hkl = ("", "") if assignments is None or assignments[k] is None else assignments[k]
         rows.append(
             [
-                _fmt(r.g_per_nm, 8),
-                _fmt(r.g_sigma_per_nm, 3),
-                _fmt(r.d_angstrom, 7),
-                _fmt(r.d_sigma_angstrom, 3),
-                _fmt(r.fwhm_per_nm, 5),
-                _fmt(r.fwhm_sigma_per_nm, 3),
-                _fmt(r.eta, 3),
-                _fmt(r.area, 6),
-                _fmt(r.area_sigma, 3),
+                format_cell(r.g_per_nm, ".8g"),
+                format_cell(r.g_sigma_per_nm, ".3g"),
+                format_cell(r.d_angstrom, ".7g"),
+                format_cell(r.d_sigma_angstrom, ".3g"),
+                format_cell(r.fwhm_per_nm, ".5g"),
+                format_cell(r.fwhm_sigma_per_nm, ".3g"),
+                format_cell(r.eta, ".3g"),
+                format_cell(r.area, ".6g"),
+                format_cell(r.area_sigma, ".3g"),
                 r.kind,
-                _fmt(r.significance, 4),
-                _fmt(s.size_nm if s else None, 4),
-                _fmt(s.size_sigma_nm if s else None, 2),
-                _fmt(s.lower_limit_nm if s else None, 3),
+                format_cell(r.significance, ".4g"),
+                format_cell(s.size_nm if s else None, ".4g"),
+                format_cell(s.size_sigma_nm if s else None, ".2g"),
+                format_cell(s.lower_limit_nm if s else None, ".3g"),
                 c.character if c else "",
-                _fmt(c.n_grains if c else None, 3),
-                _fmt(c.texture_direction_deg if c and c.character == "textured" else None, 4),
+                format_cell(c.n_grains if c else None, ".3g"),
+                format_cell(c.texture_direction_deg if c and c.character == "textured" else None, ".4g"),
                 phase,
                 hkl,
             ]
@@ -1493,11 +1480,13 @@ def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
 
 def write_profile_csv(path, profile: Profile, analysis: RingAnalysis) -> None:
     """Write ``profile.csv`` (g_per_nm, intensity, sigma, background, model) atomically."""
-    from ringid.core.atomic import write_csv
+    from ringid.core.atomic import format_cell, write_csv
 
     cols = [profile.g_per_nm, profile.intensity, profile.sigma, analysis.background, analysis.model]
     n = len(profile.g_per_nm)
     if any(len(c) != n for c in cols):
         raise RingidError(path, "profile and analysis arrays differ in length")
-    rows = ([_fmt(c[i], 8) for c in cols] for i in range(n))
+    # every column as floats, 8 significant digits (an integer array too)
+    cols = [np.asarray(c, dtype=float) for c in cols]
+    rows = ([format_cell(c[i], ".8g") for c in cols] for i in range(n))
     write_csv(path, PROFILE_CSV_COLUMNS, rows)
