@@ -86,5 +86,24 @@ def test_a_cif_that_did_not_build_is_named_at_the_top_of_the_report(tmp_path):
         fh.write("Bad,,,,,,,,,0,def,failed,the space group cannot be resolved,\n")
     page = write_report(res, ["s1", "s2", "s3"], ["c1"]).read_text()
     note = page.index("Library incomplete.")
-    assert note < page.index("<h2>Summary</h2>")
+    assert note < page.index('<h2 id="summary-section">Summary</h2>')
     assert "<b>Bad</b> (the space group cannot be resolved)" in page[note:note + 400]
+
+
+def test_report_structure_links_box_and_failure_banner(tmp_path):
+    """Sample names in the summary link to their sections and each section links back; the summary
+    table scrolls in its own box (header kept visible); failed samples are named at the top."""
+    import re
+
+    res = make_results(tmp_path)
+    page = write_report(res, ["s1", "s2", "s3"], ["c1"]).read_text()
+    box = page.index('<div class="tablebox"><table id="summary">')
+    assert box < page.index("</table></div>", box)
+    for s in ("s1", "s2", "s3"):
+        assert f'<td><a href="#s-{s}">{s}</a></td>' in page
+        section = page.index(f'<div class="sample" id="s-{s}">')
+        assert page.index('href="#summary-section">↑ summary</a>', section) < page.index("<h3>", section)
+    banner = re.search(r'<div class="note err"><b>2 sample\(s\) failed</b>: (.*?)</div>', page)
+    assert banner and '<a href="#s-s2">s2</a>' in banner.group(1) and '<a href="#s-s3">s3</a>' in banner.group(1)
+    assert banner.start() < page.index('id="summary-section"')
+    assert '<p class="err">error: img.tif: not an image</p>' in page  # the failed section says why

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import math
 import os
 import tempfile
 from pathlib import Path
@@ -84,22 +85,25 @@ def _json_default(o):
 def format_cell(x, spec: str = ".6g") -> str:
     """One table cell: "" for None or NaN, ``inf``/``-inf``, ``true``/``false`` for booleans,
     integers as they are, other numbers with the format ``spec`` (e.g. ``.6g``, ``.3f``), text as it is."""
-    import math
-
-    import numpy as np
-
+    if isinstance(x, float):  # the common case first (numpy float64 is a float)
+        if x != x:
+            return ""
+        if x in (math.inf, -math.inf):
+            return "inf" if x > 0 else "-inf"
+        return format(x, spec)
     if x is None or isinstance(x, str):
         return "" if x is None else x
-    if isinstance(x, (bool, np.bool_)):
+    if isinstance(x, bool):
         return "true" if x else "false"
-    if isinstance(x, (int, np.integer)):
+    if isinstance(x, int):
+        return str(x)
+    import numpy as np
+
+    if isinstance(x, np.bool_):
+        return "true" if x else "false"
+    if isinstance(x, np.integer):
         return str(int(x))
-    x = float(x)
-    if math.isnan(x):
-        return ""
-    if math.isinf(x):
-        return "inf" if x > 0 else "-inf"
-    return format(x, spec)
+    return format_cell(float(x), spec)
 
 
 def write_csv(path: str | os.PathLike, header: list[str], rows) -> None:

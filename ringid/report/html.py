@@ -15,7 +15,7 @@ from ringid.core.records import CalibrationRecord, read_calibration_record
 from ringid.report.summary import SCREENING_NOTE, _load_json, _num, load_sample_record, write_summary
 
 _CSS = """
-body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:0 auto;max-width:1200px;padding:0 16px 40px;color:#1d232a}
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:0 auto;max-width:1500px;padding:0 16px 40px;color:#1d232a}
 h1{font-size:1.6em;margin:.8em 0 .2em} h2{border-bottom:2px solid #d6dde5;padding-bottom:4px;margin-top:1.6em}
 h3{margin:1.2em 0 .3em} .note{background:#fff6dc;border-left:5px solid #e0a800;padding:8px 12px;margin:12px 0}
 table{border-collapse:collapse;font-size:.86em;margin:6px 0} th,td{border:1px solid #d6dde5;padding:3px 7px;text-align:left;vertical-align:top}
@@ -24,6 +24,9 @@ td.num{text-align:right;font-variant-numeric:tabular-nums} .failed td{background
 .sample{border:1px solid #d6dde5;border-radius:6px;padding:8px 14px;margin:14px 0}
 .meta{color:#52606d;font-size:.9em} .tag{display:inline-block;background:#e6eef7;border-radius:3px;padding:0 5px;margin:1px 2px;font-size:.85em}
 .err{color:#a61b1b} img{max-width:100%;height:auto} input{padding:4px 8px;margin:6px 0;width:320px}
+.tablebox{max-height:75vh;overflow:auto;border:1px solid #d6dde5;margin:6px 0} .tablebox table{margin:0}
+.tablebox th{position:sticky;top:0;z-index:1} .tablebox td{max-width:24em}
+.back{float:right;font-size:.85em}
 """
 
 _JS = """
@@ -49,18 +52,25 @@ def _img(path: Path, alt: str) -> str:
 
 
 def _table(
-    header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None
+    header: list[str], rows: list[list], *, table_id: str = "", numeric: set[int] = frozenset(), row_class=None,
+    link_first: str = "", boxed: bool = False,
 ) -> str:
+    """An HTML table of text cells (escaped); ``link_first``: the first column links to ``#{link_first}{value}``;
+    ``boxed``: in its own scrolling box with the header row kept visible."""
     id_attr = f' id="{_e(table_id)}"' if table_id else ""
-    out = [f"<table{id_attr}><thead><tr>"]
+    out = ['<div class="tablebox">' if boxed else "", f"<table{id_attr}><thead><tr>"]
     out += [f'<th onclick="sortTable(this)">{_e(h)}</th>' for h in header]
     out.append("</tr></thead><tbody>")
     for k, row in enumerate(rows):
         cls = row_class(k) if row_class else ""
         out.append(f'<tr class="{_e(cls)}">' if cls else "<tr>")
-        out += [f'<td class="num">{_e(v)}</td>' if i in numeric else f"<td>{_e(v)}</td>" for i, v in enumerate(row)]
+        for i, v in enumerate(row):
+            if i == 0 and link_first:
+                out.append(f'<td><a href="#{_e(link_first)}{_e(v)}">{_e(v)}</a></td>')
+            else:
+                out.append(f'<td class="num">{_e(v)}</td>' if i in numeric else f"<td>{_e(v)}</td>")
         out.append("</tr>")
-    out.append("</tbody></table>")
+    out.append("</tbody></table>" + ("</div>" if boxed else ""))
     return "".join(out)
 
 
@@ -75,7 +85,8 @@ def _read_csv(path: Path) -> list[dict]:
 def _sample_section(row: dict, sample_dir: Path) -> str:
     rec = load_sample_record(row["sample"], sample_dir)
     ident = _load_json(sample_dir / "identification.json")
-    parts = [f'<div class="sample" id="s-{_e(row["sample"])}"><h3>{_e(row["sample"])}</h3>']
+    parts = [f'<div class="sample" id="s-{_e(row["sample"])}"><a class="back" href="#summary-section">↑ summary</a>'
+             f'<h3>{_e(row["sample"])}</h3>']
     meta = [f"status: <b>{_e(row['status'])}</b>", f"crystallinity: <b>{_e(row['crystallinity'] or '—')}</b>"]
     if row["phases"]:
         conf = row["confidence"].split(";")
@@ -121,6 +132,16 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
         )
     parts.append("</div>")
     return "".join(parts)
+
+
+def _failure_note(rows: list[dict]) -> list[str]:
+    """A box naming the failed samples (each linked to its section, which says why)."""
+    failed = [r for r in rows if r["status"] != "ok"]
+    if not failed:
+        return []
+    links = ", ".join(f'<a href="#s-{_e(r["sample"])}">{_e(r["sample"])}</a>' for r in failed)
+    return [f'<div class="note err"><b>{len(failed)} sample(s) failed</b>: {links}. Each one\'s section gives '
+            "the reason; the others were analysed.</div>"]
 
 
 def _library_note(results: Path) -> list[str]:
@@ -171,7 +192,8 @@ def write_report(
     n_ok = sum(r["status"] == "ok" for r in rows)
     counts: dict[str, int] = {}
     for r in rows:
-        counts[r["crystallinity"] or "—"] = counts.get(r["crystallinity"] or "—", 0) + 1
+        label = r["crystallinity"] or "not measured"
+        counts[label] = counts.get(label, 0) + 1
     parts = ["<!DOCTYPE html><html lang=en><head><meta charset=utf-8>",
              f"<title>{_e(title)}</title><style>{_CSS}</style><script>{_JS}</script></head><body>",
              f"<h1>{_e(title)}</h1>",
@@ -179,10 +201,19 @@ def write_report(
              + ", ".join(f"{_e(k)}: {v}" for k, v in sorted(counts.items())) + f" · ringid {__version__}</p>",
              f'<div class="note"><b>Screening result.</b> {_e(SCREENING_NOTE)}</div>',
              *_library_note(results),
-             "<h2>Summary</h2>", '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
+             *_failure_note(rows),
+             '<h2 id="summary-section">Summary</h2>', '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
     cols = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "crystallite_size_nm",
             "n_rings", "unexplained_rings", "ellipticity", "flags", "error"]
-    parts.append(_table(cols, [[r[c] for c in cols] for r in rows], table_id="summary", numeric={6, 7, 8, 9},
+    spaced = ("phases", "alternatives", "confidence", "flags")  # ";" lists with room to wrap
+
+    def cell(r, c):
+        if c == "flags":  # library_incomplete holds for every sample: the box above says it once
+            return "; ".join(f for f in r[c].split(";") if f and f != "library_incomplete")
+        return r[c].replace(";", "; ") if c in spaced else r[c]
+
+    body = [[cell(r, c) for c in cols] for r in rows]
+    parts.append(_table(cols, body, table_id="summary", numeric={6, 7, 8, 9}, link_first="s-", boxed=True,
                         row_class=lambda k: "failed" if rows[k]["status"] != "ok" else ""))
     parts.append("<h2>Calibrations</h2>")
     cal_rows = []
