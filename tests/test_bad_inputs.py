@@ -584,3 +584,20 @@ def test_a_broken_cif_is_named_in_every_identification_and_at_the_end_of_the_run
     ident = json.loads((tmp_path / "ident" / "identification.json").read_text(encoding="utf-8"))
     assert ident["unavailable_phases"] == [{"phase": "Broken", "error": "no atom sites (no _atom_site_fract_x loop)"}]
     assert "library_incomplete" in ident["flags"]
+
+
+def test_a_cif_folder_given_as_library_says_how_to_build_one(tmp_path, capsys):
+    write_cif(tmp_path, "Au", cif_text())
+    (tmp_path / "rings.csv").write_text("g_per_nm,g_sigma_per_nm,fwhm_per_nm,area\n4.247,0.001,0.05,100\n")
+    rc = main(["identify", str(tmp_path / "rings.csv"), "--library", str(tmp_path), "-o", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert rc == 1 and err.strip() == (f"ringid: error: {tmp_path}: this is a folder of CIF files, not a built phase "
+                                       f"library: build one with `ringid library build {tmp_path} -o LIB` and pass LIB")
+
+
+def test_phases_option_does_not_swallow_the_rings_table(tmp_path):
+    """`ringid identify --phases CeO2,Au rings.csv`: the list is one comma-separated argument."""
+    from ringid.cli import build_parser
+
+    args = build_parser().parse_args(["identify", "--phases", "CeO2,Au", "rings.csv", "--library", "LIB"])
+    assert args.phases == ["CeO2", "Au"] and args.rings == "rings.csv"

@@ -30,7 +30,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--dilation-window", type=float, metavar="REL", help="override the ± relative lattice-scale window")
     p.add_argument("--g-range-per-nm", type=float, nargs=2, metavar=("LO", "HI"),
                    help="g range of the profile in which rings could be detected (default: the observed rings)")
-    p.add_argument("--phases", nargs="*", metavar="PHASE", help="score only against these phases")
+    p.add_argument("--phases", type=lambda text: [p for p in text.split(",") if p], metavar="PHASE,PHASE",
+                   help="score only against these phases (comma-separated, e.g. CeO2,Au)")
     p.add_argument("--false-identification-rate", type=float, default=FALSE_IDENTIFICATION_RATE, metavar="RATE",
                    help="report a phase only when the chance that an absent phase scores as well is below RATE, "
                         "controlled over the phases of a sample (default %(default)s)")

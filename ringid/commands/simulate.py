@@ -36,8 +36,10 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--dose", type=float, default=1.0, metavar="F", help="count scale before Poisson noise")
     p.add_argument("--beam-stop", action="store_true", help="add a beam-stop shadow")
     p.add_argument("--beam-stop-angle-deg", type=float, default=300.0, metavar="DEG", help="rod direction")
-    p.add_argument("--hot-pixel-fraction", type=float, default=0.0, metavar="F")
-    p.add_argument("--dead-pixel-fraction", type=float, default=0.0, metavar="F")
+    p.add_argument("--hot-pixel-fraction", type=float, default=0.0, metavar="F",
+                   help="share of pixels made hot: 20× their counts plus an offset, clipped at saturation (default 0)")
+    p.add_argument("--dead-pixel-fraction", type=float, default=0.0, metavar="F",
+                   help="share of pixels that read 0 (default 0)")
     p.add_argument("--dtype", choices=("uint16", "float32"), default="uint16")
     p.add_argument("--seed", type=int, default=0, help="random seed (equal seeds give equal images)")
     p.set_defaults(func=run)

@@ -286,5 +286,8 @@ def load_library(library_dir: str | os.PathLike) -> list[PhaseRings]:
         if read_phase_record(library_dir, phase).get("status") == "ok":
             phases.append(read_phase_rings(library_dir, phase))
     if not phases:
+        if not (Path(library_dir) / "phases").is_dir() and any(Path(library_dir).glob("*.cif")):
+            raise RingidError(library_dir, "this is a folder of CIF files, not a built phase library: build one with "
+                                           f"`ringid library build {library_dir} -o LIB` and pass LIB")
         raise RingidError(library_dir, "the phase library has no usable phase")
     return phases
