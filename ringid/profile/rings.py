@@ -1460,7 +1460,7 @@ def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
                 format_cell(r.d_sigma_angstrom, ".3g"),
                 format_cell(r.fwhm_per_nm, ".5g"),
                 format_cell(r.fwhm_sigma_per_nm, ".3g"),
-                format_cell(r.eta, ".3g"),
+                format_cell(round(r.eta, 3), ".3g"),  # the fit does not fix η better than that
                 format_cell(r.area, ".6g"),
                 format_cell(r.area_sigma, ".3g"),
                 r.kind,
@@ -1469,7 +1469,8 @@ def write_rings_csv(path, analysis: RingAnalysis, assignments=None) -> None:
                 format_cell(s.size_sigma_nm if s else None, ".2g"),
                 format_cell(s.lower_limit_nm if s else None, ".3g"),
                 c.character if c else "",
-                format_cell(c.n_grains if c else None, ".3g"),
+                # a grain count only where the ring is not continuous (there: too many grains to count)
+                format_cell(c.n_grains if c and c.character in ("spotty", "textured") else None, ".3g"),
                 format_cell(c.texture_direction_deg if c and c.character == "textured" else None, ".4g"),
                 phase,
                 hkl,

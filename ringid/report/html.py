@@ -95,8 +95,8 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
         meta.append("phases: none identified")
     if row["alternatives"]:
         meta.append(f"cannot be told apart from: {_e(row['alternatives'].replace(';', ', '))}")
-    if row["crystallite_size_nm"]:
-        meta.append(f"crystallite size: {_e(row['crystallite_size_nm'])} nm")
+    if _size_text(row):
+        meta.append(f"crystallite size: {_e(_size_text(row))} nm")
     if row["ring_character"]:
         meta.append(f"ring character: {_e(row['ring_character'])}")
     if row["fractions_rough"]:
@@ -132,6 +132,13 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
         )
     parts.append("</div>")
     return "".join(parts)
+
+
+def _size_text(row: dict) -> str:
+    """The crystallite size of a summary row as shown: a number, or "> N" for a lower limit (nm)."""
+    if row["crystallite_size_nm"]:
+        return row["crystallite_size_nm"]
+    return f"> {row['crystallite_size_lower_limit_nm']}" if row["crystallite_size_lower_limit_nm"] else ""
 
 
 def _failure_note(rows: list[dict]) -> list[str]:
@@ -208,6 +215,8 @@ def write_report(
     spaced = ("phases", "alternatives", "confidence", "flags")  # ";" lists with room to wrap
 
     def cell(r, c):
+        if c == "crystallite_size_nm":
+            return _size_text(r)
         if c == "flags":  # library_incomplete holds for every sample: the box above says it once
             return "; ".join(f for f in r[c].split(";") if f and f != "library_incomplete")
         return r[c].replace(";", "; ") if c in spaced else r[c]

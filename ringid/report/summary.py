@@ -27,6 +27,7 @@ SUMMARY_COLUMNS = [
     "ellipticity", "crystallite_size_nm", "n_rings", "unexplained_rings", "flags", "error",
     "calibration", "fractions_rough", "crystallite_size_sigma_nm", "ring_character", "note",
     "unexplained_d_angstrom", "unexplained_intensity_share", "false_identification_probability",
+    "crystallite_size_lower_limit_nm",
 ]
 
 SCREENING_NOTE = ("Phase identification is a screening result: ring positions fix a lattice only as well as the "
@@ -80,9 +81,6 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
     for group in ident.get("alternatives", []):
         alts += [a for a in group if a not in alts and a not in phases]
     flags = list(rec.flags) + [f for f in ident.get("flags", []) if f not in rec.flags]
-    size_text = _num(rec.crystallite_size_nm, ".3g")
-    if rec.crystallite_size_lower_limit_nm and not size_text:
-        size_text = f">{_num(rec.crystallite_size_lower_limit_nm, '.3g')}"
     return {
         "sample": sample,
         "status": status,
@@ -93,7 +91,7 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
         "center_x_px": _num(geo.center_x_px if geo else None, ".3f"),
         "center_y_px": _num(geo.center_y_px if geo else None, ".3f"),
         "ellipticity": _num(geo.ellipticity if geo else None, ".5f"),
-        "crystallite_size_nm": size_text,
+        "crystallite_size_nm": _num(rec.crystallite_size_nm, ".3g"),
         "n_rings": str(rec.n_rings),
         "unexplained_rings": str(ident.get("unexplained_rings", 0 if status == "failed" else "")),
         "flags": ";".join(flags),
@@ -109,6 +107,8 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
         "false_identification_probability": ";".join(
             _num(p, ".2g") for p in ident.get("false_identification_probability", [])
         ),
+        # the rings are as sharp as the instrument allows: the size is at least this (crystallite_size_nm empty)
+        "crystallite_size_lower_limit_nm": _num(rec.crystallite_size_lower_limit_nm, ".3g"),
     }
 
 
