@@ -107,3 +107,5 @@ def test_report_structure_links_box_and_failure_banner(tmp_path):
     assert banner and '<a href="#s-s2">s2</a>' in banner.group(1) and '<a href="#s-s3">s3</a>' in banner.group(1)
     assert banner.start() < page.index('id="summary-section"')
     assert '<p class="err">error: img.tif: not an image</p>' in page  # the failed section says why
+    # beside the answer, what bears on trusting it
+    assert "unexplained: 1 of 6 rings" in page and "look-alikes within the window: Ag" in page

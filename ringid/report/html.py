@@ -102,6 +102,9 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
     if row["fractions_rough"]:
         meta.append(f"rough fractions: {_e(row['fractions_rough'])}")
     parts.append('<p class="meta">' + " · ".join(meta) + "</p>")
+    trust = _trust_line(row, ident, sample_dir)
+    if trust:
+        parts.append(f'<p class="meta">{trust}</p>')
     if row["note"]:
         parts.append(f'<p class="meta">note: {_e(row["note"])}</p>')
     if row["error"]:
@@ -165,6 +168,37 @@ def _library_note(results: Path) -> list[str]:
     return [f'<div class="note err"><b>Library incomplete.</b> {len(failed)} CIF(s) could not be built, so no sample '
             f"was compared with these phases: {items}. A sample made of one of them comes out unidentified or "
             "as a look-alike; fix the CIF and rerun (the image work is not redone).</div>"]
+
+
+def _trust_line(row: dict, ident: dict, sample_dir: Path) -> str:
+    """What bears on how far to trust the answer: rings left unexplained (count and intensity share),
+    the best phase not reported and its score, and the look-alikes."""
+    if row["status"] != "ok" or not ident or not row["n_rings"] or row["n_rings"] == "0":
+        return ""
+    n_unexp = len(ident.get("unexplained", []))
+    share = ident.get("unexplained_intensity_share")
+    out = [f"unexplained: {n_unexp} of {row['n_rings']} rings"
+           + (f" ({float(share):.0%} of the ring intensity)" if n_unexp and isinstance(share, (int, float)) else "")]
+    answer = set(ident.get("phases", []))
+    best = ident_score = None
+    for r in _read_csv(sample_dir / "phases.csv"):
+        if r.get("in_answer") == "true" and ident_score is None:
+            ident_score = r.get("score")
+        if r.get("phase") not in answer and best is None:
+            best = r
+    if best is not None:
+        text = f"best phase not reported: {_e(best['phase'])} (score {_num(best['score'], '.1f')}"
+        if ident_score:
+            text += f" against {_num(ident_score, '.1f')} for the answer"
+        p, rate = best.get("false_identification_probability"), (ident.get("settings") or {}).get(
+            "false_identification_rate")
+        if p and isinstance(rate, (int, float)):
+            text += (f"; significant on its own, p = {_num(p, '.2g')}: it fits these rings too" if float(p) < rate
+                     else f"; not significant on its own, p = {_num(p, '.2g')}")
+        out.append(text + ")")
+    looks = [a for group in ident.get("alternatives", []) for a in group]
+    out.append("look-alikes within the window: " + (_e(", ".join(looks)) if looks else "none"))
+    return " · ".join(out)
 
 
 def _identification_notes(ident: dict) -> list[str]:
