@@ -56,6 +56,6 @@ def run(args) -> int:
     write_calibration(args.output, cal, pixel_size_um=args.pixel_size_um, nominal_camera_constant_A_px=nominal)
     g = cal.geometry
     print(f"{args.image}: K = {g.camera_constant_A_px:.3f} ± {cal.camera_constant_sigma_A_px:.3f} Å·px, "
-          f"centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, ellipticity {100 * g.ellipticity:.3f} % at "
+          f"centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, ellipticity {g.ellipticity:.5f} at "
           f"{g.ellipse_angle_deg:.1f}°, {cal.ring_d_calc_angstrom.size} rings", file=sys.stderr)
     return 0

@@ -98,9 +98,11 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
     if _size_text(row):
         meta.append(f"crystallite size: {_e(_size_text(row))} nm")
     if row["ring_character"]:
-        meta.append(f"ring character: {_e(row['ring_character'])}")
-    if row["fractions_rough"]:
-        meta.append(f"rough fractions: {_e(row['fractions_rough'])}")
+        kinds = row["ring_character"].split(";")
+        meta.append("rings: " + _e(", ".join(kinds[:-1]) + " and " + kinds[-1] if len(kinds) > 1 else kinds[0]))
+    if row["fractions_rough"] and len(row["phases"].split(";")) > 1:
+        pairs = ", ".join(f"{p} {f}" for p, f in zip(row["phases"].split(";"), row["fractions_rough"].split(";")))
+        meta.append(f"rough shares of the crystalline phases (from ring areas): {_e(pairs)}")
     parts.append('<p class="meta">' + " · ".join(meta) + "</p>")
     trust = _trust_line(row, ident, sample_dir)
     if trust:
