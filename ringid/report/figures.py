@@ -89,6 +89,7 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
         ax.set_xlim(g.min(), g.max())
         ymin, ymax = ax.get_ylim()
         _draw_phase_ticks(ax, references, g, ymin, ymax)
+        _draw_unexplained(ax, rings)
         ax.legend(fontsize=7, loc="upper right", frameon=False)
     ax.set_xlabel("g = 1/d (1/nm)", fontsize=8)
     ax.set_ylabel("azimuthal mean (counts/px)", fontsize=8)
@@ -97,13 +98,25 @@ def overview_png(path: str | os.PathLike, *, title: str, thumbnail: np.ndarray |
     plt.close(fig)
 
 
+# a sharp ring no reported phase explains: black on the profile, bright green on the (magma) thumbnail,
+# unlike any phase colour
+UNEXPLAINED_COLOUR = "#111111"
+UNEXPLAINED_COLOUR_ON_IMAGE = "#39ff14"
+
+
+def _is_unexplained(row) -> bool:
+    return row.get("kind", "ring") == "ring" and not row.get("phase")
+
+
 def _draw_thumbnail(ax_img, thumbnail: np.ndarray, bin_px: int, geometry: Geometry | None, rings) -> None:
-    """The log-scaled thumbnail with each ring of ``rings`` drawn as the ellipse it is on the detector."""
+    """The log-scaled thumbnail with each ring of ``rings`` marked by a short arc of the ellipse it
+    is on the detector, at the left edge of the pattern only, so that the spots and texture of the
+    rings stay visible (halos in cyan, unexplained rings in green)."""
     ax_img.imshow(thumbnail, cmap="magma", origin="upper", interpolation="nearest")
     k, cx, cy = (math.nan,) * 3 if geometry is None else (
         geometry.camera_constant_A_px, geometry.center_x_px, geometry.center_y_px)
     if k and all(map(math.isfinite, (k, cx, cy))):
-        from matplotlib.patches import Ellipse
+        from matplotlib.patches import Arc
 
         eps = geometry.ellipticity if math.isfinite(geometry.ellipticity) else 0.0
         ang = geometry.ellipse_angle_deg if math.isfinite(geometry.ellipse_angle_deg) else 0.0
@@ -114,38 +127,49 @@ def _draw_thumbnail(ax_img, thumbnail: np.ndarray, bin_px: int, geometry: Geomet
                 continue
             radius = k * g / 10.0 / bin_px
             a, b = radius / math.sqrt(1 - eps), radius * math.sqrt(1 - eps)
-            colour = "#7fdbff" if r.get("kind", "ring") == "halo" else "#ffffff"
-            ax_img.add_patch(
-                Ellipse(
-                    ((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5),
-                    2 * a,
-                    2 * b,
-                    angle=ang,
-                    fill=False,
-                    lw=0.6,
-                    ec=colour,
-                    alpha=0.9,
-                    ls=(0, (2, 2)),
-                )
-            )
+            colour = ("#7fdbff" if r.get("kind", "ring") == "halo"
+                      else UNEXPLAINED_COLOUR_ON_IMAGE if _is_unexplained(r) else "#ffffff")
+            # the arc's angles are in the ellipse's own frame: 160°–200° of the image, about −x
+            ax_img.add_patch(Arc(((cx + 0.5) / bin_px - 0.5, (cy + 0.5) / bin_px - 0.5), 2 * a, 2 * b, angle=ang,
+                                 theta1=160.0 - ang, theta2=200.0 - ang, lw=0.9, ec=colour, alpha=0.95))
         ax_img.set_xlim(-0.5, thumbnail.shape[1] - 0.5)
         ax_img.set_ylim(thumbnail.shape[0] - 0.5, -0.5)
 
 
+def _draw_unexplained(ax, rings) -> None:
+    """A black marker just above the profile frame over every sharp ring no reported phase explains."""
+    g = []
+    for r in rings:
+        try:
+            if _is_unexplained(r):
+                g.append(float(r["g_per_nm"]))
+        except (KeyError, ValueError):
+            continue
+    if g:
+        ax.plot(g, [1.025] * len(g), "v", ms=5, color=UNEXPLAINED_COLOUR, transform=ax.get_xaxis_transform(),
+                clip_on=False, label="unexplained ring", ls="none")
+
+
 def _draw_phase_ticks(ax, references, g: np.ndarray, ymin: float, ymax: float) -> None:
-    """Ticks at the identified phases' ring positions (height by intensity), hkl on the 12 strongest."""
+    """Ticks at the identified phases' ring positions (height by intensity), hkl on up to 12 of the
+    strongest per phase, skipping a label that would overlap one already placed."""
+    placed: list[float] = []  # label positions, as fractions of the g axis
+    span = float(g.max() - g.min()) or 1.0
     for n, (phase, rings_of_phase, dilation) in enumerate(references):
         colour = PHASE_COLOURS[n % len(PHASE_COLOURS)]
         gr = rings_of_phase.g_per_nm / dilation
         keep = (gr >= g.min()) & (gr <= g.max()) & (~rings_of_phase.double_diffraction)
-        top = set(np.argsort(-rings_of_phase.intensity[keep])[:12].tolist())
         frac = 0.05 + 0.25 * rings_of_phase.intensity[keep] / 100.0
         # one collection for all ticks of a phase: x in data, y in axes units
         ax.vlines(gr[keep], 0.0, frac, transform=ax.get_xaxis_transform(), colors=colour, lw=1.0, alpha=0.8)
-        for j, (gj, fj, hkl) in enumerate(zip(gr[keep], frac, np.array(rings_of_phase.hkl)[keep])):
-            if j in top:
-                ax.text(gj, ymin * (ymax / ymin) ** (fj + 0.01), hkl.replace(" ", ""), rotation=90, fontsize=6,
-                        color=colour, ha="center", va="bottom")
+        labels = np.array(rings_of_phase.hkl)[keep]
+        for j in np.argsort(-rings_of_phase.intensity[keep])[:12]:
+            x = (gr[keep][j] - g.min()) / span
+            if any(abs(x - p) < 0.014 for p in placed):  # about one label's width at this figure size
+                continue
+            placed.append(x)
+            ax.text(gr[keep][j], ymin * (ymax / ymin) ** (frac[j] + 0.01), labels[j].replace(" ", ""), rotation=90,
+                    fontsize=6, color=colour, ha="center", va="bottom")
         ax.plot([], [], color=colour, lw=1.5, label=phase)
 
 
