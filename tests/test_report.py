@@ -109,3 +109,23 @@ def test_report_structure_links_box_and_failure_banner(tmp_path):
     assert '<p class="err">error: img.tif: not an image</p>' in page  # the failed section says why
     # beside the answer, what bears on trusting it
     assert "unexplained: 1 of 6 rings" in page and "look-alikes within the window: Ag" in page
+
+
+def test_linked_figures_keep_a_large_report_small(tmp_path):
+    """With figures linked, the page links the PNG files beside it (relative paths, loaded lazily)
+    instead of holding them; auto switches to that above 100 samples."""
+    from ringid.report.html import INLINE_MAX_SAMPLES
+
+    res = make_results(tmp_path)
+    png = b"\x89PNG\r\n\x1a\n" + b"\x00" * 5000
+    (res / "samples" / "s1" / "overview.png").write_bytes(png)
+    inline = write_report(res, ["s1", "s2", "s3"], ["c1"], figures="inline").read_text()
+    assert "data:image/png;base64," in inline and 'loading="lazy"' not in inline
+    linked = write_report(res, ["s1", "s2", "s3"], ["c1"], figures="linked").read_text()
+    assert '<img alt="overview of s1" loading="lazy" src="samples/s1/overview.png">' in linked
+    assert "data:image/png;base64," not in linked and len(linked) < len(inline) - 5000
+    assert "keep the folder together" in linked
+    few = write_report(res, ["s1", "s2", "s3"], ["c1"]).read_text()  # auto, 3 samples: inline
+    many = ["s1", "s2", "s3"] + [f"missing{k}" for k in range(INLINE_MAX_SAMPLES)]  # auto, 103 samples: linked
+    assert "data:image/png;base64," in few
+    assert 'loading="lazy" src="samples/s1/overview.png"' in write_report(res, many, ["c1"]).read_text()

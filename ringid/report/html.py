@@ -21,7 +21,8 @@ h3{margin:1.2em 0 .3em} .note{background:#fff6dc;border-left:5px solid #e0a800;p
 table{border-collapse:collapse;font-size:.86em;margin:6px 0} th,td{border:1px solid #d6dde5;padding:3px 7px;text-align:left;vertical-align:top}
 th{background:#eef2f6;cursor:pointer;user-select:none} tr:nth-child(even) td{background:#f8fafc}
 td.num{text-align:right;font-variant-numeric:tabular-nums} .failed td{background:#fde8e8 !important}
-.sample{border:1px solid #d6dde5;border-radius:6px;padding:8px 14px;margin:14px 0}
+.sample{border:1px solid #d6dde5;border-radius:6px;padding:8px 14px;margin:14px 0;content-visibility:auto;
+contain-intrinsic-size:auto 520px} summary{cursor:pointer;color:#2471a3;font-size:.9em}
 .meta{color:#52606d;font-size:.9em} .tag{display:inline-block;background:#e6eef7;border-radius:3px;padding:0 5px;margin:1px 2px;font-size:.85em}
 .err{color:#a61b1b} img{max-width:100%;height:auto} input{padding:4px 8px;margin:6px 0;width:320px}
 .tablebox{max-height:75vh;overflow:auto;border:1px solid #d6dde5;margin:6px 0} .tablebox table{margin:0}
@@ -43,7 +44,18 @@ def _e(x) -> str:
     return html.escape(str(x), quote=True)
 
 
-def _img(path: Path, alt: str) -> str:
+REPORT_FIGURES = ("auto", "inline", "linked")
+INLINE_MAX_SAMPLES = 100  # "auto": figures inside the page up to this many samples (about 85 kB each)
+
+
+def _img(path: Path, alt: str, link_from: Path | None = None) -> str:
+    """A figure: inside the page (base64), or with ``link_from`` (the page's folder) a relative link
+    to the PNG file, loaded only when it scrolls into view."""
+    if link_from is not None:
+        if not path.is_file():
+            return f'<p class="meta">(no figure: {_e(path.name)})</p>'
+        rel = os.path.relpath(path, link_from).replace(os.sep, "/")
+        return f'<img alt="{_e(alt)}" loading="lazy" src="{_e(rel)}">'
     try:
         data = path.read_bytes()
     except OSError:
@@ -82,7 +94,7 @@ def _read_csv(path: Path) -> list[dict]:
         return []
 
 
-def _sample_section(row: dict, sample_dir: Path) -> str:
+def _sample_section(row: dict, sample_dir: Path, link_from: Path | None = None) -> str:
     rec = load_sample_record(row["sample"], sample_dir)
     ident = _load_json(sample_dir / "identification.json")
     parts = [f'<div class="sample" id="s-{_e(row["sample"])}"><a class="back" href="#summary-section">↑ summary</a>'
@@ -114,7 +126,7 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
     if row["flags"]:
         parts.append("<p>" + "".join(f'<span class="tag">{_e(f)}</span>' for f in row["flags"].split(";")) + "</p>")
     if (sample_dir / "overview.png").exists():
-        parts.append(_img(sample_dir / "overview.png", f"overview of {row['sample']}"))
+        parts.append(_img(sample_dir / "overview.png", f"overview of {row['sample']}", link_from))
     rings = _read_csv(sample_dir / "rings.csv")
     if rings:
         cols = [c for c in ("kind", "g_per_nm", "d_angstrom", "d_sigma_angstrom", "fwhm_per_nm", "area", "size_nm",
@@ -128,7 +140,8 @@ def _sample_section(row: dict, sample_dir: Path) -> str:
             "size_nm": ".3g",
         }
         body = [[_num(r[c], fmt[c]) if c in fmt and r[c] not in ("", None) else r[c] for c in cols] for r in rings]
-        parts.append(_table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}))
+        parts.append(f"<details><summary>rings table ({len(rings)} rings)</summary>"
+                     + _table(cols, body, numeric={i for i, c in enumerate(cols) if c in fmt}) + "</details>")
     parts += _identification_notes(ident)
     if rec.geometry is not None:
         geo = rec.to_json()["geometry"]
@@ -227,11 +240,22 @@ def _identification_notes(ident: dict) -> list[str]:
 
 
 def write_report(
-    results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report"
+    results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report",
+    figures: str = "auto",
 ) -> Path:
-    """Write ``summary.csv`` and ``report.html`` under ``results_dir``; return the report path."""
+    """Write ``summary.csv`` and ``report.html`` under ``results_dir``; return the report path.
+
+    ``figures``: ``inline`` puts every figure inside the page (one file to pass on, ~85 kB per
+    sample); ``linked`` links the PNG files beside it, loaded as they scroll into view (a page of
+    1,000 samples stays small and opens at once, but needs the results folder kept together);
+    ``auto`` is inline up to INLINE_MAX_SAMPLES samples, else linked.
+    """
+    if figures not in REPORT_FIGURES:
+        raise RingidError(None, f"figures must be one of {', '.join(REPORT_FIGURES)}, got {figures!r}")
     results = Path(results_dir)
     rows = write_summary(results, samples)
+    linked = figures == "linked" or (figures == "auto" and len(samples) > INLINE_MAX_SAMPLES)
+    link_from = results if linked else None
     n_ok = sum(r["status"] == "ok" for r in rows)
     counts: dict[str, int] = {}
     for r in rows:
@@ -244,6 +268,8 @@ def write_report(
              + ", ".join(f"{_e(k)}: {v}" for k, v in sorted(counts.items())) + f" · ringid {__version__}</p>",
              f'<div class="note"><b>Screening result.</b> {_e(SCREENING_NOTE)}</div>',
              *_library_note(results),
+             *([f'<p class="meta">The figures are the PNG files of {_e(results.name)}/ beside this page: keep the '
+                "folder together, or write a one-file report with report.figures: inline.</p>"] if linked else []),
              *_failure_note(rows),
              '<h2 id="summary-section">Summary</h2>', '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
     cols = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "crystallite_size_nm",
@@ -287,10 +313,10 @@ def write_report(
     for cal in calibrations:
         fig = results / "calibrations" / f"{cal}.png"
         if fig.exists():
-            parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration residuals of {cal}"))
+            parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration residuals of {cal}", link_from))
     parts.append("<h2>Samples</h2>")
     for r in rows:
-        parts.append(_sample_section(r, results / "samples" / r["sample"]))
+        parts.append(_sample_section(r, results / "samples" / r["sample"], link_from))
     parts.append("<h2>Phase library</h2>")
     index = _read_csv(results / "library" / "index.csv")
     if index:

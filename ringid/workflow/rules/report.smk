@@ -15,6 +15,8 @@ rule report:
         report=f"{RESULTS}/report.html",
     log:
         f"{RESULTS}/logs/report.log",
+    params:
+        figures=config["report"]["figures"],
     threads: 1
     resources:
         mem_mb=mem("cheap"),
@@ -23,4 +25,5 @@ rule report:
         "ringid report {RESULTS:q}"
         " --samples-sheet {input.samples_sheet:q}"
         " --calibrations-sheet {input.calibrations_sheet:q}"
+        " --figures {params.figures}"
         " > {log:q} 2>&1"
