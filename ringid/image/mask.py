@@ -3,14 +3,22 @@
 A mask is a bool array, True where a pixel is excluded. :func:`build_mask`
 combines them and counts what each one removed.
 
-- Saturated: pixels at or above the saturation level (the source dtype's maximum
-  or a configured level), grown by one pixel (charge spills into neighbours).
+- Saturated: pixels at or above the saturation level (configured, or from the data's bit
+  depth: :mod:`ringid.image.load`), and the pixels of a summed stack saturated in any frame,
+  grown by one pixel (charge spills into neighbours).
+- Below the floor: pixels below a configured ``negative_floor`` (none by default: a
+  dark-subtracted pattern's negative pixels are noise about a low level, and masking or
+  clipping them would bias the azimuthal mean upwards).
 - Hot / dead: isolated outliers. A hot pixel exceeds the largest of its eight
   neighbours, a dead pixel falls below the smallest of them, by ``outlier_sigma``
   noise standard deviations at the local level (the noise gain is estimated
   from the image itself, robustly). Comparing with the neighbour extremes rather
   than the neighbour median keeps ring crests and diffraction spots, which always
-  have a bright neighbour, unmasked.
+  have a bright neighbour, unmasked. Negative values take part as they are: an isolated
+  pixel far below a darkest neighbour at or below 0 is an outlier all the same (the
+  "less than half" condition is then implied). Data with negative values (dark-subtracted)
+  carry an additive noise (read noise) that Poisson statistics do not give at low level;
+  its variance, measured from neighbour differences at low level, is added to the noise.
 - Beam stop: a dark connected region that reaches the direct beam. On a
   block-averaged image, pixels far below the azimuthal median at their radius
   (the rod) or inside the dark central disc are dark; the connected dark
@@ -44,17 +52,20 @@ class MaskResult:
     beam_stop: np.ndarray | None
     rough_center_xy: tuple[float, float] | None
     notes: tuple[str, ...] = ()
+    n_below_floor: int = 0
 
     @property
     def fraction_masked(self) -> float:
         return float(self.mask.mean())
 
 
-def saturated_mask(data: np.ndarray, level: float) -> np.ndarray:
-    """Pixels at or above ``level``, grown by one pixel (8-connected)."""
+def saturated_mask(data: np.ndarray, level: float, saturated: np.ndarray | None = None) -> np.ndarray:
+    """Pixels at or above ``level`` (NaN: none) or in ``saturated``, grown by one pixel (8-connected)."""
     from scipy import ndimage
 
-    sat = data >= np.float32(level)
+    sat = data >= np.float32(level) if np.isfinite(level) else np.zeros(data.shape, bool)
+    if saturated is not None:
+        sat |= saturated
     if sat.any():
         ys, xs = np.nonzero(sat)
         y0, y1 = max(ys.min() - 1, 0), min(ys.max() + 2, data.shape[0])
@@ -105,21 +116,54 @@ def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: i
     return gain if gain > 0 else 1.0
 
 
+def low_level_variance(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: int = 200_000,
+                       seed: int = 0) -> float:
+    """Noise variance per pixel at low level for data with negative values (0 for data without).
+
+    Counts are never negative; negative pixels mean an offset was subtracted (a dark frame),
+    whose read noise adds a variance σ₀² that Poisson statistics at a level near 0 do not
+    give. For two neighbours x, y of equal variance σ² the difference x − y is independent of
+    the sum x + y (Gaussian noise), so the pairs with a low sum (x + y ≤ 2) give an unbiased
+    σ² = median((x − y)²) / (2 · 0.4549) (the median of χ²₁ is 0.4549) at the low level.
+    Fewer than 100 such pairs: 0.
+    """
+    if not data.min() < 0:
+        return 0.0
+    a = data[:, :-1].reshape(-1)
+    b = data[:, 1:].reshape(-1)
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, a.size, min(n_sample, a.size))
+    x, y = a[idx].astype(np.float64), b[idx].astype(np.float64)
+    if valid is not None:
+        keep = valid[:, :-1].reshape(-1)[idx] & valid[:, 1:].reshape(-1)[idx]
+        x, y = x[keep], y[keep]
+    low = x + y <= 2.0
+    if low.sum() < 100:
+        return 0.0
+    return float(np.median((x[low] - y[low]) ** 2)) / (2 * 0.4549)
+
+
 def outlier_pixel_mask(data: np.ndarray, valid: np.ndarray | None = None, *, outlier_sigma: float = 8.0,
-                       gain: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+                       gain: float | None = None, additive_variance: float | None = None
+                       ) -> tuple[np.ndarray, np.ndarray]:
     """Hot and dead pixels: isolated outliers against all eight neighbours.
 
     Returns (hot, dead) bool arrays. A hot pixel stands ``outlier_sigma`` noise
-    standard deviations √(g·max(level, 1)) above its brightest neighbour and is more
+    standard deviations √(g·max(level, 1) + σ₀²) above its brightest neighbour and is more
     than twice as bright; a dead pixel the same below its darkest neighbour and
     less than half of it (8σ keeps false alarms below about one per 10⁷ pixels for
-    Poisson counts; common practice for defect maps, not a published value).
+    Poisson counts; common practice for defect maps, not a published value). σ₀² is
+    :func:`low_level_variance` (0 for data without negative values) unless
+    ``additive_variance`` gives it.
     """
     d = data.astype(np.float32, copy=False)
     if gain is None:
         gain = noise_gain(d, valid)
+    if additive_variance is None:
+        additive_variance = low_level_variance(d, valid)
     k = np.float32(outlier_sigma)
     g = np.float32(gain)
+    v0 = np.float32(additive_variance)
     hot = np.zeros(d.shape, bool)
     dead = np.zeros(d.shape, bool)
     ny = d.shape[0]
@@ -135,8 +179,12 @@ def outlier_pixel_mask(data: np.ndarray, valid: np.ndarray | None = None, *, out
             block = np.concatenate([block, d[ny - 2 : ny - 1]]) if ny > 1 else np.concatenate([block, block])
         hi, lo = _neighbour_extremes_rows(block)
         dd = d[y0:y1]
-        hot[y0:y1] = ((dd - hi) > k * np.sqrt(g * np.maximum(hi, 1.0)) + 2 * g) & (dd > 2.0 * hi)
-        dead[y0:y1] = ((lo - dd) > k * np.sqrt(g * np.maximum(lo, 1.0)) + 2 * g) & (dd < 0.5 * lo)
+        if v0 > 0:
+            hot[y0:y1] = ((dd - hi) > k * np.sqrt(g * np.maximum(hi, 1.0) + v0) + 2 * g) & (dd > 2.0 * hi)
+            dead[y0:y1] = ((lo - dd) > k * np.sqrt(g * np.maximum(lo, 1.0) + v0) + 2 * g) & (dd < 0.5 * lo)
+        else:
+            hot[y0:y1] = ((dd - hi) > k * np.sqrt(g * np.maximum(hi, 1.0)) + 2 * g) & (dd > 2.0 * hi)
+            dead[y0:y1] = ((lo - dd) > k * np.sqrt(g * np.maximum(lo, 1.0)) + 2 * g) & (dd < 0.5 * lo)
     if valid is not None:
         hot &= valid
         dead &= valid
@@ -233,7 +281,8 @@ def beam_stop_mask(data: np.ndarray, valid: np.ndarray | None, center_x_px: floa
         bright = np.flatnonzero(~(head < dark_fraction * peak))
         disc_r = int(bright[0]) if bright.size else 0
     ref = np.nan_to_num(med, nan=0.0)[np.minimum(rb, nb - 1)]
-    dark = ok & ((small < dark_fraction * ref) | (rb < disc_r))
+    # "dark against the median" needs a median above 0: dark-subtracted data far out sit about 0
+    dark = ok & (((small < dark_fraction * ref) & (ref > 0)) | (rb < disc_r))
     if not dark.any():
         return np.zeros(data.shape, bool)
     # connect across one-tile gaps (a bright ring seen through the stop's few % transmission)
@@ -308,6 +357,7 @@ def load_user_mask(path: str | os.PathLike, shape: tuple[int, int]) -> np.ndarra
 
 
 def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturation_level: float = math.nan,
+               saturated: np.ndarray | None = None, negative_floor: float | None = None,
                user_mask: np.ndarray | None = None, border_px: int = 2, detect_beam_stop: bool = True,
                detect_outliers: bool = True, outlier_sigma: float = 8.0,
                center_hint: tuple[float, float] | None = None) -> MaskResult:
@@ -320,6 +370,10 @@ def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturatio
         NaN/inf pixels from loading.
     saturation_level : float
         Counts at which the detector saturates (NaN: none known, skip).
+    saturated : bool array or None
+        Pixels known to be saturated (those of a summed stack saturated in some frame).
+    negative_floor : float or None
+        Mask pixels below this value (None: keep every negative value).
     user_mask : bool array or None
         Extra pixels to exclude (True = excluded).
     border_px : int
@@ -333,10 +387,17 @@ def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturatio
     mask = np.zeros(data.shape, bool) if invalid is None else invalid.copy()
     n_invalid = int(mask.sum())
     n_sat = 0
-    if np.isfinite(saturation_level):
-        sat = saturated_mask(data, saturation_level)
+    if np.isfinite(saturation_level) or saturated is not None:
+        sat = saturated_mask(data, saturation_level, saturated)
         n_sat = int((sat & ~mask).sum())
         mask |= sat
+    n_floor = 0
+    if negative_floor is not None:
+        below = data < np.float32(negative_floor)
+        n_floor = int((below & ~mask).sum())
+        if n_floor:
+            notes.append(f"{n_floor} pixels below the negative floor {negative_floor:g} masked")
+        mask |= below
     border = border_mask(data, border_px)
     n_border = int((border & ~mask).sum())
     mask |= border
@@ -374,4 +435,4 @@ def build_mask(data: np.ndarray, *, invalid: np.ndarray | None = None, saturatio
             shadow = None
     return MaskResult(mask=mask, n_invalid=n_invalid, n_saturated=n_sat, n_hot=n_hot, n_dead=n_dead,
                       n_beam_stop=n_bs, n_border=n_border, n_user=n_user, beam_stop=shadow,
-                      rough_center_xy=rough, notes=tuple(notes))
+                      rough_center_xy=rough, notes=tuple(notes), n_below_floor=n_floor)
