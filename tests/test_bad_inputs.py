@@ -117,7 +117,7 @@ def _volume_4d(p):
 FAILING_IMAGES = [
     ("zero-byte file", "empty.tif", _zero_byte, "empty file (0 bytes)", ()),
     ("truncated TIFF", "truncated.tif", _truncated, "unreadable or truncated TIFF", ()),
-    ("text file named .tif", "notes.tif", _text, "not an image: neither a TIFF nor a .npy file", ()),
+    ("text file named .tif", "notes.tif", _text, "not an image: neither a TIFF, an MRC nor a .npy file", ()),
     (
         "1×1 image",
         "one.tif",

@@ -37,7 +37,8 @@ class ImageResult:
 
 
 def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: int | None = None,
-                  saturation_level: float | None = None, fit_ellipse: bool = False, n_azimuth: int = 72,
+                  saturation_level: float | None = None, negative_floor: float | None = None,
+                  fit_ellipse: bool = False, n_azimuth: int = 72,
                   g_step_per_nm: float | None = None, with_cake: bool = True, max_pixels: int | None = None,
                   max_bytes: int | None = None) -> ImageResult:
     """Load → mask → centre (at the calibration's ellipse) → integrate one sample pattern.
@@ -45,7 +46,7 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     Parameters
     ----------
     path : path-like
-        The pattern (TIFF or .npy).
+        The pattern (TIFF, MRC or .npy).
     calibration : Geometry
         The ``geometry`` of a :class:`ringid.core.records.CalibrationRecord` (standard, known or nominal):
         K (Å·px, required), ε, θ, voltage; its centre is only a fallback.
@@ -72,8 +73,8 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     if not (calibration.camera_constant_A_px > 0):
         raise RingidError(path, "the calibration gives no camera constant")
     t = {}
-    img, masks = load_and_mask(path, frame=frame, saturation_level=saturation_level, user_mask_path=user_mask_path,
-                               max_pixels=max_pixels, max_bytes=max_bytes, timings_s=t)
+    img, masks = load_and_mask(path, frame=frame, saturation_level=saturation_level, negative_floor=negative_floor,
+                               user_mask_path=user_mask_path, max_pixels=max_pixels, max_bytes=max_bytes, timings_s=t)
     t0 = time.perf_counter()
     g, fit, flags, notes = _centre(img, masks, calibration, fit_ellipse, path)
     geometry = Geometry(center_x_px=g.center_x_px, center_y_px=g.center_y_px, ellipticity=g.ellipticity,
@@ -89,10 +90,14 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
                        timings_s=t, data=img.data)
 
 
-def load_and_mask(path, *, frame: int | None = None, saturation_level: float | None = None, user_mask_path=None,
-                  max_pixels: int | None = None, max_bytes: int | None = None, timings_s: dict | None = None):
+def load_and_mask(path, *, frame: int | None = None, saturation_level: float | None = None,
+                  negative_floor: float | None = None, user_mask_path=None, max_pixels: int | None = None,
+                  max_bytes: int | None = None, timings_s: dict | None = None):
     """Load a pattern and build its mask: ``(LoadedImage, MaskResult)``; a pattern with no usable
-    pixel raises RingidError saying why. ``timings_s`` (if given) gets ``load`` and ``mask`` (s)."""
+    pixel raises RingidError saying why. ``saturation_level`` (counts per frame; None: from the
+    data's bit depth) and ``frame`` go to :func:`ringid.image.load.load_image`, ``negative_floor``
+    (None: keep every negative value) to :func:`ringid.image.mask.build_mask`. ``timings_s`` (if
+    given) gets ``load`` and ``mask`` (s)."""
     import time
 
     from ringid.core.errors import RingidError
@@ -101,16 +106,16 @@ def load_and_mask(path, *, frame: int | None = None, saturation_level: float | N
 
     t = {} if timings_s is None else timings_s
     t0 = time.perf_counter()
-    img = load_image(path, frame=frame, max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
+    img = load_image(path, frame=frame, saturation_level=saturation_level, max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
                      max_bytes=max_bytes or DEFAULT_MAX_BYTES)
     t["load"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     user = load_user_mask(user_mask_path, img.shape) if user_mask_path else None
-    level = img.saturation_level if saturation_level is None else saturation_level
-    masks = build_mask(img.data, invalid=img.invalid, saturation_level=level, user_mask=user)
+    masks = build_mask(img.data, invalid=img.invalid, saturation_level=img.saturation_level, saturated=img.saturated,
+                       negative_floor=negative_floor, user_mask=user)
     t["mask"] = time.perf_counter() - t0
     if masks.mask.all():
-        raise RingidError(path, _nothing_usable(img, level))
+        raise RingidError(path, _nothing_usable(img, negative_floor))
     return img, masks
 
 
@@ -161,14 +166,20 @@ def _refuse_centre_outside(data, mask, path) -> None:
                                 "record the pattern with the direct beam on the detector")
 
 
-def _nothing_usable(img, saturation_level: float) -> str:
+def _nothing_usable(img, negative_floor: float | None) -> str:
     """Why every pixel of a loaded pattern is masked, in one line."""
     import math
 
+    level = img.saturation_level
     if img.invalid is not None and img.invalid.all():
         return "every pixel is NaN or infinite: no usable data"
     if not np.any(img.data):
         return "every pixel is 0: no counts recorded"
-    if math.isfinite(saturation_level) and np.all(img.data >= saturation_level):
-        return f"every pixel is saturated (at or above {saturation_level:g} counts): nothing to measure"
+    if (math.isfinite(level) and np.all(img.data >= level)) or (img.saturated is not None and img.saturated.all()):
+        per_frame = " in some frame" if img.n_frames > 1 else ""
+        return (f"every pixel is saturated (at or above {img.frame_saturation_level:g} counts{per_frame}): "
+                "nothing to measure")
+    if negative_floor is not None and np.all(img.data < negative_floor):
+        return f"every pixel is below the negative floor {negative_floor:g}: nothing to measure"
     return "every pixel is masked (invalid, saturated, dead, hot or user-masked): nothing to measure"
+
