@@ -64,6 +64,7 @@ def run_measure(args) -> int:
     from ringid.jobs.batch import ImageOptions, measure_batch, read_manifest
 
     options = ImageOptions(max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
+                           frame=args.frame, negative_floor=args.negative_floor,
                            min_ring_g_per_nm=args.min_ring_g_per_nm)
     if args.after_crash is not None:
         from ringid.jobs.batch import crash_reason, record_unfinished_measurements

@@ -85,6 +85,8 @@ class ImageOptions:
     saturation_level: float | None = None
     user_mask: str | None = None
     min_ring_g_per_nm: float = 1.0
+    frame: int | None = None
+    negative_floor: float | None = None
 
 
 def measurement_summary(rec) -> str:
@@ -118,6 +120,7 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
                                  sample=row.sample, calibration_id=row.calibration, note=row.note,
                                  voltage_kv=row.voltage_kv, max_pixels=options.max_pixels,
                                  saturation_level=options.saturation_level, user_mask=options.user_mask,
+                                 frame=options.frame, negative_floor=options.negative_floor,
                                  min_ring_g_per_nm=options.min_ring_g_per_nm)
         except Exception as exc:  # noqa: BLE001 - one sample's failure never stops the batch
             try:

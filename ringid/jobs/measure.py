@@ -65,11 +65,14 @@ def trim_profile(profile, min_g_per_nm: float):
 def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike, out_dir: str | os.PathLike, *,
                    sample: str, calibration_id: str = "", note: str = "", voltage_kv: float = math.nan,
                    max_pixels: int | None = None, saturation_level: float | None = None, user_mask=None,
+                   frame: int | None = None, negative_floor: float | None = None,
                    min_ring_g_per_nm: float = DEFAULT_MIN_RING_G_PER_NM) -> dict:
     """Run the image half and the ring stage for one sample; write its folder; return the record.
 
     Rings are searched from ``min_ring_g_per_nm`` outwards (default 1 nm⁻¹, d ≤ 10 Å): inside it
     the direct beam's tail dominates a SAED profile. Lower it for phases with larger d-spacings.
+    ``frame`` (None: sum a stack) and ``negative_floor`` (None: keep negative values) are those of
+    :func:`ringid.image.stage.load_and_mask`.
     """
 
     out = Path(out_dir)
@@ -79,8 +82,8 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
                     ringid_version=__version__)
     try:
         record = _measure(image, calibration_path, out, identity, voltage_kv=voltage_kv, max_pixels=max_pixels,
-                          saturation_level=saturation_level, user_mask=user_mask,
-                          min_ring_g_per_nm=min_ring_g_per_nm)
+                          saturation_level=saturation_level, user_mask=user_mask, frame=frame,
+                          negative_floor=negative_floor, min_ring_g_per_nm=min_ring_g_per_nm)
     except Exception as exc:  # noqa: BLE001 - a failure is a result, recorded with its reason
         record = _mark_failed(out, identity, exc)
     record = replace(record, timings_s={**record.timings_s, "total": round(time.perf_counter() - t_start, 4)})
@@ -89,7 +92,8 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
 
 
 def _measure(image, calibration_path, out: Path, identity: dict, *, voltage_kv: float, max_pixels, saturation_level,
-             user_mask, min_ring_g_per_nm: float) -> SampleRecord:
+             user_mask, min_ring_g_per_nm: float, frame: int | None = None,
+             negative_floor: float | None = None) -> SampleRecord:
     """The image work of :func:`measure_sample`: writes the tables and thumbnail, returns the record."""
     from ringid.image.stage import process_image
     from ringid.profile.rings import analyze_profile, write_profile_csv, write_rings_csv
@@ -102,7 +106,8 @@ def _measure(image, calibration_path, out: Path, identity: dict, *, voltage_kv: 
         raise RingidError(image, f"recorded at {voltage_kv:g} kV but its calibration is for {cal_geom.voltage_kv:g} kV")
     measured_distortion = cal.kind == "standard"
     res = process_image(image, cal_geom, fit_ellipse=not measured_distortion, max_pixels=max_pixels,
-                        saturation_level=saturation_level, user_mask_path=user_mask)
+                        saturation_level=saturation_level, user_mask_path=user_mask, frame=frame,
+                        negative_floor=negative_floor)
     t0 = time.perf_counter()
     profile = trim_profile(res.profile, min_ring_g_per_nm)
     analysis = analyze_profile(profile, instrument=cal.instrument)

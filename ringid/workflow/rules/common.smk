@@ -56,6 +56,10 @@ def image_options():
     out = [f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}"]
     if opts["saturation_level"] is not None:
         out.append(f"--saturation-level {float(opts['saturation_level'])}")
+    if opts["frame"] is not None:
+        out.append(f"--frame {int(opts['frame'])}")
+    if opts["negative_floor"] is not None:
+        out.append(f"--negative-floor {float(opts['negative_floor'])}")
     if opts["user_mask"]:
         out.append(f"--mask {shlex.quote(str(opts['user_mask']))}")
     return " ".join(out)
