@@ -23,10 +23,10 @@ COMMANDS = [
     ("library", "build and inspect the phase library from CIF files"),
     ("simulate", "write a synthetic ring pattern of a phase as a TIFF (demo and test data)"),
     ("calibrate", "camera constant, centre and ellipse from a pattern of a standard film"),
-    ("calibration", "calibration job of the workflow: one row of the calibration sheet"),
-    ("measure", "image job of one sample: pattern -> profile -> rings"),
-    ("identify", "score a sample's rings against the phase library"),
-    ("batch", "several samples in one process: image jobs of a manifest, identification of sample folders"),
+    ("calibration", "[workflow job] one row of the calibration sheet -> its calibration record"),
+    ("measure", "[workflow job] image work of one sample: pattern -> profile -> rings"),
+    ("identify", "score a rings table (or a measured sample folder) against the phase library"),
+    ("batch", "[workflow job] several samples in one process: image work, identification"),
     ("report", "summary.csv and report.html of a results folder"),
     ("analyze", "one pattern through every stage in one process (no workflow)"),
 ]
@@ -36,6 +36,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="ringid",
         description="Phase identification for electron diffraction ring patterns (screening results).",
+        epilog="A whole folder of patterns runs through the Snakemake workflow (snakemake -s /path/to/Snakefile "
+               "--cores N --configfile my.yaml); the commands marked [workflow job] are its jobs, seldom run by "
+               "hand. One pattern without the workflow: ringid analyze.",
     )
     parser.add_argument("--version", action="version", version=f"ringid {__version__}")
     parser.add_argument("--debug", action="store_true", help="show the full traceback on errors")

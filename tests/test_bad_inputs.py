@@ -601,3 +601,24 @@ def test_phases_option_does_not_swallow_the_rings_table(tmp_path):
 
     args = build_parser().parse_args(["identify", "--phases", "CeO2,Au", "rings.csv", "--library", "LIB"])
     assert args.phases == ["CeO2", "Au"] and args.rings == "rings.csv"
+
+
+def test_analyze_takes_a_nominal_camera_length_and_the_image_options(tmp_path, capsys):
+    """`ringid analyze` has the nominal-camera-length route and the image options of `measure`."""
+    from ringid.core.units import electron_wavelength_angstrom
+
+    (tmp_path / "cifs").mkdir()
+    write_cif(tmp_path / "cifs", "Au", cif_text())
+    assert main(["library", "build", str(tmp_path / "cifs"), "-o", str(tmp_path / "lib"), "--quiet"]) == 0
+    image = _tiff(tmp_path / "au.tif", ring_pattern())
+    # K = λL/p (λ and K in Å, L and p in m): the camera length giving the patterns' K at 15 µm pixels, 1 % off
+    length_mm = 1.01 * K_A_PX * 15e-6 / electron_wavelength_angstrom(200.0) * 1e3
+    rc = main(["analyze", str(image), "--camera-length-mm", f"{length_mm:.3f}", "--pixel-size-um", "15",
+               "--voltage-kv", "200", "--library", str(tmp_path / "lib"), "-o", str(tmp_path / "out"),
+               "--saturation-level", "60000", "--min-ring-g-per-nm", "1.0"])
+    err = capsys.readouterr().err
+    assert rc == 0, err
+    ident = json.loads((tmp_path / "out" / "identification.json").read_text(encoding="utf-8"))
+    assert ident["phases"] == ["Au"], err
+    rec = json.loads((tmp_path / "out" / "sample.json").read_text(encoding="utf-8"))
+    assert rec["calibration_kind"] == "nominal"

@@ -215,7 +215,7 @@ def test_cli_with_library_standard_and_search(tmp_path):
     lib = tmp_path / "lib"
     assert build_phase(cif, lib)["status"] == "ok"
     tif = tmp_path / "au_lib.tif"
-    assert main(["simulate", "--phase", "Au", "--library", str(lib), "--camera-constant-A-px", "420",
+    assert main(["simulate", "--phase", "Au", "--library", str(lib), "--camera-constant-a-px", "420",
                  "--shape", "768", "768", "--center-x-px", "400.2", "--center-y-px", "350.7", "--ellipticity", "0.01",
                  "--dose", "0.2", "--n-grains", "2000", "--seed", "5", "-o", str(tif)]) == 0
     out = tmp_path / "cal.json"

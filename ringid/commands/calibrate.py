@@ -22,7 +22,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--voltage-kv", type=float, required=True, metavar="V", help="accelerating voltage in kV")
     p.add_argument("--camera-length-mm", type=float, metavar="L", help="nominal camera length in mm")
     p.add_argument("--pixel-size-um", type=float, metavar="P", help="detector pixel size in µm")
-    p.add_argument("--camera-constant-A-px", type=float, metavar="K", help="nominal camera constant in Å·px")
+    p.add_argument("--camera-constant-a-px", "--camera-constant-A-px", dest="camera_constant_A_px", type=float,
+                   metavar="K", help="nominal camera constant in Å·px")
     p.add_argument("--mask", metavar="MASK", help="extra mask image (non-zero = excluded)")
     p.add_argument("--frame", type=int, metavar="N", help="use this frame of a multi-frame file (default: sum)")
     p.add_argument("-o", "--output", required=True, metavar="CAL.json", help="calibration file to write")

@@ -1,6 +1,6 @@
 """``ringid simulate``: write a synthetic ring pattern of a library phase as a TIFF.
 
-    ringid simulate --phase Au --library LIB --camera-constant-A-px 1000 -o au.tif
+    ringid simulate --phase Au --library LIB --camera-constant-a-px 1000 -o au.tif
     ringid simulate --pyfai-calibrant Au --camera-length-mm 400 --pixel-size-um 30 -o au.tif
 
 The true geometry goes to ``--truth-json`` (default: the TIFF path with ``.json``),
@@ -18,7 +18,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--library", metavar="LIB", help="phase library folder")
     p.add_argument("-o", "--output", required=True, metavar="TIFF", help="image to write")
     p.add_argument("--truth-json", metavar="JSON", help="where to write the true geometry (default: OUTPUT.json)")
-    p.add_argument("--camera-constant-A-px", type=float, metavar="K", help="camera constant in Å·px")
+    p.add_argument("--camera-constant-a-px", "--camera-constant-A-px", dest="camera_constant_A_px", type=float,
+                   metavar="K", help="camera constant in Å·px")
     p.add_argument("--camera-length-mm", type=float, metavar="L", help="camera length in mm (with --pixel-size-um)")
     p.add_argument("--pixel-size-um", type=float, metavar="P", help="detector pixel size in µm")
     p.add_argument("--voltage-kv", type=float, default=200.0, metavar="V", help="accelerating voltage (default 200)")
@@ -72,7 +73,7 @@ def run(args) -> int:
     elif args.camera_length_mm and args.pixel_size_um:
         k = nominal_camera_constant_a_px(args.camera_length_mm, args.pixel_size_um, args.voltage_kv)
     else:
-        raise RingidError(None, "give --camera-constant-A-px or both --camera-length-mm and --pixel-size-um")
+        raise RingidError(None, "give --camera-constant-a-px or both --camera-length-mm and --pixel-size-um")
     sim = simulate_pattern(
         d, inten, camera_constant_A_px=k, shape=tuple(args.shape), center_x_px=args.center_x_px,
         center_y_px=args.center_y_px, ellipticity=args.ellipticity, ellipse_angle_deg=args.ellipse_angle_deg,
