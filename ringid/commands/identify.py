@@ -1,6 +1,8 @@
 """``ringid identify``: score a sample's rings against the phase library.
 
     ringid identify RINGS --library LIB -o DIR [--calibration-kind standard|constant|nominal]
+    ringid identify --d-angstrom 3.51 2.37 1.89 ... [--d-accuracy-pct 1] --library LIB -o DIR
+    ringid identify --d-list D.csv --library LIB -o DIR      (columns d_angstrom[, d_sigma_angstrom, intensity])
 
 Writes DIR/phases.csv (ranked candidates), DIR/rings.csv (the rings with phase and hkl) and
 DIR/identification.json (answer, confidence, alternatives, refined lattice, flags).
@@ -15,6 +17,13 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p = subparsers.add_parser(name, help=help_text, description=help_text)
     p.add_argument("rings", metavar="RINGS", nargs="?",
                    help="rings table (CSV with g_per_nm, g_sigma_per_nm, fwhm_per_nm, area[, kind])")
+    p.add_argument("--d-angstrom", type=float, nargs="+", metavar="D",
+                   help="a plain list of d-spacings (Å) instead of RINGS, e.g. measured by hand or from a paper")
+    p.add_argument("--d-list", metavar="CSV",
+                   help="a CSV of d-spacings instead of RINGS: d_angstrom, optional d_sigma_angstrom and intensity")
+    p.add_argument("--d-accuracy-pct", type=float, default=1.0, metavar="PCT",
+                   help="with --d-angstrom/--d-list: the accuracy of each d, as one standard deviation in %% "
+                        "(default %(default)s); without intensities, intensities count for nothing")
     p.add_argument("--sample-dir", metavar="DIR",
                    help="identify a measured sample folder (from ringid measure) instead of RINGS; "
                         "writes its phases.csv, rings.csv, identification.json and overview.png")
@@ -65,16 +74,31 @@ def run(args) -> int:
                               false_identification_rate=check_rate(args.false_identification_rate))
         print(f"{args.sample_dir}: {identification_summary(out)}", file=sys.stderr)
         return 0
-    if not args.rings or not args.output:
-        raise RingidError(None, "give RINGS and -o DIR, or --sample-dir DIR")
-    obs, rows = read_observed_rings(args.rings)
+    given = [x for x in (args.rings, args.d_angstrom, args.d_list) if x]
+    if len(given) != 1 or not args.output:
+        raise RingidError(None, "give one of RINGS, --d-angstrom or --d-list, and -o DIR (or --sample-dir DIR)")
+    intensities_known = True
+    if args.rings:
+        obs, rows = read_observed_rings(args.rings)
+        source = str(args.rings)
+    else:
+        from ringid.identify.files import d_list_rings, read_d_list
+
+        accuracy = args.d_accuracy_pct / 100.0
+        if args.d_list:
+            obs, rows, intensities_known = read_d_list(args.d_list, accuracy)
+            source = str(args.d_list)
+        else:
+            obs, rows, intensities_known = d_list_rings(args.d_angstrom, accuracy=accuracy)
+            source = "d-spacings " + " ".join(f"{d:g}" for d in args.d_angstrom)
     if args.phases:
         missing = sorted(set(args.phases) - {p.phase for p in library})
         if missing:
             raise RingidError(args.library, f"phase(s) not in the library: {', '.join(missing)}")
         library = [p for p in library if p.phase in set(args.phases)]
     settings = IdentifySettings(dilation_window=args.dilation_window or WINDOW_BY_CALIBRATION[args.calibration_kind],
-                                false_identification_rate=check_rate(args.false_identification_rate))
+                                false_identification_rate=check_rate(args.false_identification_rate),
+                                intensity_weight=IdentifySettings.intensity_weight if intensities_known else 0.0)
     if args.dilation_window is not None and not 0 < args.dilation_window < 0.5:
         raise RingidError(None, f"--dilation-window must be between 0 and 0.5, got {args.dilation_window}")
     result = identify(
@@ -83,8 +107,9 @@ def run(args) -> int:
     from ringid.library.store import unavailable_phases
 
     write_results(args.output, rows, obs, result, settings,
-                  provenance={"rings": str(args.rings), "library": str(args.library), "n_library_phases": len(library)},
+                  provenance={"rings": source, "library": str(args.library), "n_library_phases": len(library),
+                              "intensities": "given" if intensities_known else "unknown (no weight)"},
                   unavailable=unavailable_phases(args.library))
     answer = "; ".join(f"{p} ({c:.2f})" for p, c in zip(result.phases, result.confidence)) or "no phase identified"
-    print(f"{args.rings}: {answer}; {result.unexplained_rings} unexplained of {len(obs)} rings", file=sys.stderr)
+    print(f"{source}: {answer}; {result.unexplained_rings} unexplained of {len(obs)} rings", file=sys.stderr)
     return 0

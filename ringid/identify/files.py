@@ -41,6 +41,69 @@ def read_observed_rings(path: str | os.PathLike) -> tuple[ObservedRings, list[di
     return obs, rows
 
 
+D_LIST_COLUMNS = ("d_angstrom", "d_sigma_angstrom", "intensity")
+
+
+def d_list_rings(d_angstrom, *, d_sigma_angstrom=None, intensity=None, accuracy: float = 0.01,
+                 source: str = "") -> tuple[ObservedRings, list[dict], bool]:
+    """Rings from a plain list of d-spacings (Å), as measured by hand or read from a table:
+    ``(ObservedRings, rows, intensities known)``.
+
+    σ of each d is ``d_sigma_angstrom`` where given, else ``accuracy`` × d (the stated relative
+    accuracy, taken as one standard deviation). Without intensities every ring gets the same area
+    and the caller should give intensities no weight (unknown, not equal); the width is unknown (0).
+    """
+    d = np.asarray(d_angstrom, dtype=float)
+    if d.ndim != 1 or d.size == 0 or not np.all(np.isfinite(d) & (d > 0)):
+        raise RingidError(source or None, "d-spacings must be positive numbers (Å)")
+    if not 0 < accuracy < 0.2:
+        raise RingidError(None, f"the d accuracy must be between 0 and 20 %, got {accuracy * 100:g} %")
+    sig = np.full(d.size, np.nan) if d_sigma_angstrom is None else np.asarray(d_sigma_angstrom, dtype=float)
+    sig = np.where(np.isfinite(sig) & (sig > 0), sig, accuracy * d)
+    known = intensity is not None and np.all(np.isfinite(np.asarray(intensity, float)))
+    area = np.asarray(intensity, dtype=float) if known else np.ones(d.size)
+    if known and not np.all(area > 0):
+        raise RingidError(source or None, "intensities must be positive numbers")
+    order = np.argsort(-d)  # ascending g
+    g = 10.0 / d[order]
+    obs = ObservedRings(g, g * sig[order] / d[order], np.zeros(d.size), area[order], source=source,
+                        row_index=np.arange(d.size))
+    rows = [{"g_per_nm": f"{gi:.8g}", "g_sigma_per_nm": f"{si:.3g}", "d_angstrom": f"{di:.7g}",
+             "d_sigma_angstrom": f"{ds:.3g}", "fwhm_per_nm": "", "area": f"{ai:.6g}" if known else "",
+             "kind": "ring"}
+            for gi, si, di, ds, ai in zip(g, obs.g_sigma_per_nm, d[order], sig[order], area[order])]
+    return obs, rows, bool(known)
+
+
+def read_d_list(path: str | os.PathLike, accuracy: float = 0.01) -> tuple[ObservedRings, list[dict], bool]:
+    """A CSV of d-spacings (column ``d_angstrom``; optional ``d_sigma_angstrom``, ``intensity``),
+    as :func:`d_list_rings`."""
+    import csv
+
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.DictReader(fh))
+    except OSError as exc:
+        raise RingidError(path, f"cannot read d-spacing list ({exc.strerror or exc})") from None
+    if not rows or "d_angstrom" not in rows[0]:
+        raise RingidError(path, "a d-spacing list needs a column d_angstrom (optional d_sigma_angstrom, intensity)")
+    unknown = [c for c in rows[0] if c and c not in D_LIST_COLUMNS]
+    if unknown:
+        raise RingidError(path, f"unknown column(s) {', '.join(unknown)}; the columns are {', '.join(D_LIST_COLUMNS)}")
+
+    def column(name):
+        if name not in rows[0]:
+            return None
+        try:
+            return [float(r[name]) if (r[name] or "").strip() else np.nan for r in rows]
+        except ValueError as exc:
+            raise RingidError(path, f"non-numeric value in column {name} ({exc})") from None
+
+    return d_list_rings(column("d_angstrom"), d_sigma_angstrom=column("d_sigma_angstrom"),
+                        intensity=column("intensity"), accuracy=accuracy, source=str(path))
+
+
 PHASES_COLUMNS = [
     "rank", "phase", "score", "confidence", "in_answer", "dilation", "dilation_sigma", "n_matched",
     "n_missing_strong", "missing_strong_rings", "explained_intensity_share", "false_identification_probability",
