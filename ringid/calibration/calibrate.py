@@ -414,12 +414,13 @@ def _fit_fwhm_line(g, fwhm) -> tuple[float, float]:
 def calibrate_image(image_path, standard_d_angstrom, *, voltage_kv: float, standard_intensity=None,
                     standard_hkl=None, nominal_camera_constant_A_px: float | None = None, standard: str = "",
                     standard_source: str = "", user_mask_path=None, frame: int | None = None,
-                    saturation_level: float | None = None) -> Calibration:
-    """Load, mask and calibrate one image of a standard (see :func:`calibrate_pattern`)."""
+                    saturation_level: float | None = None, negative_floor: float | None = None) -> Calibration:
+    """Load, mask and calibrate one image of a standard (see :func:`calibrate_pattern`); the image
+    options are those of a sample's image job."""
     from ringid.image.stage import load_and_mask
 
     img, masks = load_and_mask(image_path, frame=frame, saturation_level=saturation_level,
-                               user_mask_path=user_mask_path)
+                               negative_floor=negative_floor, user_mask_path=user_mask_path)
     cal = calibrate_pattern(img.data, masks.mask, standard_d_angstrom, voltage_kv=voltage_kv,
                             standard_intensity=standard_intensity, standard_hkl=standard_hkl,
                             nominal_camera_constant_A_px=nominal_camera_constant_A_px,

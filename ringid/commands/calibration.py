@@ -14,6 +14,11 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--sheet", required=True, metavar="CSV", help="calibration sheet")
     p.add_argument("--library", metavar="LIB", help="phase library folder (for standard films)")
     p.add_argument("-o", "--output", required=True, metavar="CAL.json", help="calibration record to write")
+    p.add_argument("--saturation-level", type=float, metavar="COUNTS",
+                   help="standard film: mask pixels at or above this level (default: from the data's bit depth)")
+    p.add_argument("--frame", type=int, metavar="N", help="standard film: use frame N of a stack (default: sum)")
+    p.add_argument("--negative-floor", type=float, metavar="COUNTS", help="standard film: mask pixels below this")
+    p.add_argument("--mask", metavar="MASK", help="standard film: user mask image (non-zero = excluded)")
     p.add_argument("--after-crash", type=int, metavar="STATUS",
                    help="do no work: record the calibration as failed when this job's first run died with shell "
                         "exit STATUS before writing it (the workflow's fallback)")
@@ -44,7 +49,9 @@ def run(args) -> int:
                 voltage_kv=row.voltage_kv))
             print(f"ringid: warning: calibration {args.calibration}: the job died; recorded as failed", file=sys.stderr)
         return 0
-    rec = make_calibration(rows[args.calibration], args.output, library_dir=args.library)
+    options = {"saturation_level": args.saturation_level, "frame": args.frame, "negative_floor": args.negative_floor,
+               "user_mask_path": args.mask}
+    rec = make_calibration(rows[args.calibration], args.output, library_dir=args.library, image_options=options)
     if rec.status == "ok":
         print(f"{args.calibration}: K = {rec.camera_constant_A_px:.4f} Å·px ({rec.kind})", file=sys.stderr)
     else:

@@ -178,11 +178,15 @@ def _write_empty_table(path: Path) -> None:
     write_csv(path, RINGS_CSV_COLUMNS if "rings" in path.name else PROFILE_CSV_COLUMNS, [])
 
 
-def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.PathLike | None = None
-                     ) -> CalibrationRecord:
-    """Write ``calibrations/{id}.json`` for one calibration sheet row; return the record."""
+def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.PathLike | None = None,
+                     image_options: dict | None = None) -> CalibrationRecord:
+    """Write ``calibrations/{id}.json`` for one calibration sheet row; return the record.
+
+    ``image_options``: ``saturation_level``, ``frame``, ``negative_floor``, ``user_mask_path`` for
+    a standard film's image (the same as for the samples).
+    """
     try:
-        record = _calibrate_row(row, library_dir)
+        record = _calibrate_row(row, library_dir, image_options or {})
     except Exception as exc:  # noqa: BLE001 - recorded; its samples fail with this reason
         record = CalibrationRecord(calibration=row.calibration, kind=row.kind, status="failed",
                                    error=_error_text(exc), voltage_kv=row.voltage_kv)
@@ -198,7 +202,7 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
     return record
 
 
-def _calibrate_row(row, library_dir) -> CalibrationRecord:
+def _calibrate_row(row, library_dir, image_options: dict) -> CalibrationRecord:
     """The calibration of one sheet row: fitted on a standard film, or a known or nominal camera constant."""
     from ringid.core.units import electron_wavelength_angstrom, nominal_camera_constant_a_px
 
@@ -209,7 +213,7 @@ def _calibrate_row(row, library_dir) -> CalibrationRecord:
         rings = read_phase_rings(library_dir, row.standard)
         cal = calibrate_image(row.image, rings.d_angstrom, voltage_kv=row.voltage_kv,
                               standard_intensity=rings.intensity, standard_hkl=rings.hkl, standard=row.standard,
-                              standard_source=f"phase library {library_dir}")
+                              standard_source=f"phase library {library_dir}", **image_options)
         return cal.record(calibration=row.calibration)
     if row.kind == "constant":
         k, note = row.camera_constant_A_px, "known camera constant from the sheet"

@@ -13,6 +13,8 @@ rule calibration:
         f"{RESULTS}/logs/calibrations/{{calibration}}.log",
     benchmark:
         f"{RESULTS}/benchmarks/calibrations/{{calibration}}.tsv"
+    params:
+        image=image_options(ring_search=False),  # the samples' saturation level, frame, floor and mask
     threads: 1
     resources:
         mem_mb=mem("image"),
@@ -22,6 +24,7 @@ rule calibration:
         " --sheet {input.sheet:q}"
         " --library {LIB:q}"
         " -o {output:q}"
+        " {params.image}"
         " > {log:q} 2>&1"
         " || {{ status=$?; ringid calibration {wildcards.calibration:q} --sheet {input.sheet:q} -o {output:q}"
         " --after-crash $status --log {log:q} >> {log:q} 2>&1; }}"

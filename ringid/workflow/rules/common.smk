@@ -48,12 +48,13 @@ def runtime(kind):
     return config["resources"][f"{kind}_runtime_min"]
 
 
-def image_options():
-    """The image-job options from the config's image section, shell-quoted (the same for every sample)."""
+def image_options(ring_search=True):
+    """The image-job options from the config's image section, shell-quoted (the same for every sample;
+    without the ring search's g range, the options of a standard film's calibration)."""
     import shlex
 
     opts = config["image"]
-    out = [f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}"]
+    out = [f"--min-ring-g-per-nm {float(opts['min_ring_g_per_nm'])}"] if ring_search else []
     if opts["saturation_level"] is not None:
         out.append(f"--saturation-level {float(opts['saturation_level'])}")
     if opts["frame"] is not None:
