@@ -36,7 +36,10 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
 
+    from ringid.core.memory import reuse_freed_arrays
     from ringid.identify.score import ObservedRings, identify, index_library
+
+    reuse_freed_arrays()  # as the identification jobs do
     from ringid.library.store import load_library
     from ringid.library.store import build_library
 

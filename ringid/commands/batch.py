@@ -90,6 +90,9 @@ def run_identify(args) -> int:
         print(f"ringid: warning: the identification job died; {len(done)} sample(s) recorded as failed",
               file=sys.stderr)
         return 0
+    from ringid.core.memory import reuse_freed_arrays
+
+    reuse_freed_arrays()
     library = load_library(args.library)
     records = identify_batch(args.sample_dirs, library, window_standard=args.window_standard,
                              window_nominal=args.window_nominal, library_dir=str(args.library),

@@ -65,6 +65,9 @@ def run(args) -> int:
     from ringid.identify.score import IdentifySettings, identify
     from ringid.library.store import load_library
 
+    from ringid.core.memory import reuse_freed_arrays
+
+    reuse_freed_arrays()
     library = load_library(args.library)
     if args.sample_dir:
         from ringid.jobs.measure import identification_summary, identify_sample
