@@ -104,6 +104,56 @@ def test_partial_and_mixed_occupancy_and_ions(tmp_path):
     assert any("neutral" in w for w in c.warnings)
 
 
+def _components(crystal, label):
+    """{element: occupancy} of one site (the first image of each element under that label)."""
+    out = {}
+    for lab, el, occ in zip(crystal.labels, crystal.elements, crystal.occupancy):
+        if lab == label:
+            out.setdefault(el, float(occ))
+    return out
+
+
+@pytest.mark.parametrize(
+    "symbol, site_occupancy, expected",
+    [
+        # expected: fraction × _atom_site_occupancy per element (arithmetic on the written values;
+        # standard uncertainties in parentheses dropped)
+        ("0.8Nb + 0.2Zr", 1, {"Nb": 0.8, "Zr": 0.2}),
+        ("0.56(4)Mg + 0.29(3)Ta + 0.15(5)Zr", 0.9, {"Mg": 0.504, "Ta": 0.261, "Zr": 0.135}),
+        ("0.5Ga + 0.26Zn + 0.24Mn", 1, {"Ga": 0.5, "Zn": 0.26, "Mn": 0.24}),
+        # two valence states of one element: one neutral-atom scatterer with the summed fraction
+        ("0.4Fe2+ + 0.6Fe3+", 0.5, {"Fe": 0.5}),
+    ],
+)
+def test_mixed_site_type_symbols(tmp_path, symbol, site_occupancy, expected):
+    text = cif_text(formula="Nb", atoms=(("M1", f"'{symbol}'", 0, 0, 0, site_occupancy, 0.01),))
+    c = read_crystal(write_cif(tmp_path, "mixed", text))
+    assert _components(c, "M1") == pytest.approx(expected, rel=1e-12)
+    # Fm-3m 4a: 4 positions per cell (International Tables A), each shared by every element
+    assert len(c.fract) == 4 * len(expected)
+    assert sum(c.occupancy) == pytest.approx(4 * sum(expected.values()))
+
+
+def test_mixed_site_with_charges_vacancy_and_rounding(tmp_path):
+    text = cif_text(atoms=(("M1", "'0.5Fe2+ + 0.3Ni2+'", 0, 0, 0, 1, 0.01), ("O1", "O2-", 0.5, 0.5, 0.5, 1, 0.01)))
+    c = read_crystal(write_cif(tmp_path, "vacant", text))
+    assert _components(c, "M1") == pytest.approx({"Fe": 0.5, "Ni": 0.3})
+    assert any("ionic" in w and "M1 (0.5Fe2+ + 0.3Ni2+)" in w and "O1 (O2-)" in w for w in c.warnings)
+    assert any("less than 1" in w and "M1" in w for w in c.warnings)
+    # 0.34 + 0.34 + 0.33 = 1.01 is within the rounding of three two-decimal fractions (±0.015)
+    text = cif_text(atoms=(("M1", "'0.34Nb + 0.34Zr + 0.33Ti'", 0, 0, 0, 1, 0.01),))
+    c = read_crystal(write_cif(tmp_path, "rounded", text))
+    assert sum(_components(c, "M1").values()) == pytest.approx(1.0)
+
+
+def test_ionic_type_symbols_keep_working(tmp_path):
+    text = cif_text(formula="Fe3 O4", atoms=(("Fe1", "Fe3+", 0, 0, 0, 1, 0.01), ("O1", "O2-", 0.5, 0.5, 0.5, 1, 0.01),
+                                             ("Nb1", "Nb+5", 0.25, 0.25, 0.25, 0.5, 0.01)))
+    c = read_crystal(write_cif(tmp_path, "ions", text))
+    assert sorted(set(c.elements)) == ["Fe", "Nb", "O"]
+    assert any("neutral" in w and "Nb1 (Nb+5)" in w for w in c.warnings)
+
+
 def test_cif2_text(tmp_path):
     text = "#\\#CIF_2.0\n" + cif_text(extra="_publ_section_title\n'''Gold, film standard (Å)'''\n")
     c = read_crystal(write_cif(tmp_path, "cif2", text))
@@ -129,6 +179,14 @@ BAD = {
     ),
     "angles": (cif_text(cell=(4, 4, 4, 120, 120, 120)), "impossible cell angles"),
     "angle_range": (cif_text(cell=(4, 4, 4, 90, 190, 90)), "impossible cell angles"),
+    "mixed_without_fractions": (cif_text(atoms=(("M1", "'Nb + Zr'", 0, 0, 0, 1, 0.01),)),
+                                "cannot read type symbol 'Nb + Zr' at site M1"),
+    "mixed_as_formula": (cif_text(atoms=(("M1", "Nb0.8Zr0.2", 0, 0, 0, 1, 0.01),)), "cannot read type symbol"),
+    "two_valences": (cif_text(atoms=(("M1", "Fe2+/Fe3+", 0, 0, 0, 1, 0.01),)), "cannot read type symbol"),
+    "mixed_over_one": (cif_text(atoms=(("M1", "'0.8Nb + 0.4Zr'", 0, 0, 0, 1, 0.01),)), "sum to 1.2 > 1"),
+    "mixed_unknown": (cif_text(atoms=(("M1", "'0.8Nb + 0.2Qq'", 0, 0, 0, 1, 0.01),)), "unknown element symbol 'Qq'"),
+    "mixed_overlap": (cif_text(atoms=(("M1", "'0.8Nb + 0.2Zr'", 0, 0, 0, 1, 0.01), ("O1", "O", 0, 0, 0, 0.1, 0.01))),
+                      "duplicated atom sites: M1 and O1"),
     "space_group": (cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"), "space group cannot be resolved"),
     "no_space_group": (cif_text(symmetry=""), "space group cannot be resolved"),
 }

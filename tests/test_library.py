@@ -66,22 +66,13 @@ def test_d_spacings_equal_pyfai_calibrant_tables(calibrant):
 GEMMI_PHASES = ["Fe3O4", "TiO2_anatase", "Al2O3_corundum", "ZnO", "CeO2", "ZrO2_monoclinic", "C_graphite", "Si"]
 
 
-@pytest.mark.parametrize("phase", GEMMI_PHASES)
-def test_ring_f_squared_equals_gemmi_structure_factor_calculator(phase):
-    """Relative Σ|F|² of every ring equals gemmi's StructureFactorCalculatorE (independent
-    symmetry expansion: gemmi sums over its own operators per asymmetric-unit site)."""
+def assert_rings_equal_gemmi(rings, refl, ring_of, st):
+    """Our relative ring intensities Σ|F|²d² equal those from gemmi's StructureFactorCalculatorE
+    on the gemmi small structure ``st`` (gemmi sums over its own operators per asymmetric-unit
+    site: an independent symmetry expansion and structure-factor sum)."""
     import gemmi
 
-    path = REFERENCE_PHASES / f"{phase}.cif"
-    crystal = read_crystal(path)
-    rings, refl, ring_of = ring_list(crystal, d_min_angstrom=0.7)
-    st = gemmi.read_small_structure(str(path))
-    assert len(st.get_all_unit_cell_sites()) == len(crystal.fract)  # same expansion
     st.change_occupancies_to_crystallographic()
-    u_by_label = dict(zip(crystal.labels, crystal.u_iso_angstrom2))
-    for site in st.sites:  # same U (our default where the CIF gives none); isotropic
-        site.u_iso = float(u_by_label[site.label])
-        site.aniso = gemmi.SMat33d(0, 0, 0, 0, 0, 0) if hasattr(site.aniso, "u11") else site.aniso
     calc = gemmi.StructureFactorCalculatorE(st.cell)
     weighted = np.zeros(len(rings.d_angstrom))
     for hkl, d, r in zip(refl.hkl, refl.d_angstrom, ring_of):
@@ -92,6 +83,53 @@ def test_ring_f_squared_equals_gemmi_structure_factor_calculator(phase):
     allowed = ~rings.double_diffraction
     np.testing.assert_allclose(ours[allowed], weighted[allowed], rtol=1e-6, atol=1e-9)
     assert np.all(weighted[~allowed] < 1e-9)
+
+
+@pytest.mark.parametrize("phase", GEMMI_PHASES)
+def test_ring_f_squared_equals_gemmi_structure_factor_calculator(phase):
+    """Relative Σ|F|² of every ring equals gemmi's StructureFactorCalculatorE."""
+    import gemmi
+
+    path = REFERENCE_PHASES / f"{phase}.cif"
+    crystal = read_crystal(path)
+    rings, refl, ring_of = ring_list(crystal, d_min_angstrom=0.7)
+    st = gemmi.read_small_structure(str(path))
+    assert len(st.get_all_unit_cell_sites()) == len(crystal.fract)  # same expansion
+    u_by_label = dict(zip(crystal.labels, crystal.u_iso_angstrom2))
+    for site in st.sites:  # same U (our default where the CIF gives none); isotropic
+        site.u_iso = float(u_by_label[site.label])
+        site.aniso = gemmi.SMat33d(0, 0, 0, 0, 0, 0) if hasattr(site.aniso, "u11") else site.aniso
+    assert_rings_equal_gemmi(rings, refl, ring_of, st)
+
+
+def _gemmi_small_structure(path):
+    import gemmi
+
+    return gemmi.read_small_structure(str(path))
+
+
+# A perovskite-type cell (Pm-3m: A at 1b, B at 1a, O at 3d; International Tables A) whose B
+# site is shared by three elements of very different scattering power, written as the type
+# symbol of one row, and the same structure written the conventional way, one row per element.
+# source of the equivalence: each element's occupancy is its fraction times _atom_site_occupancy
+# (0.9 here): Mg 0.56 × 0.9 = 0.504, Ta 0.29 × 0.9 = 0.261, Zr 0.15 × 0.9 = 0.135 (arithmetic).
+PEROVSKITE = dict(formula="Sr Mg0.504 Ta0.261 Zr0.135 O3", cell=(4.05, 4.05, 4.05, 90, 90, 90),
+                  symmetry="_space_group_name_H-M_alt 'P m -3 m'\n")
+MIXED_ROW = ("M1", "'0.56(4)Mg + 0.29(3)Ta + 0.15(5)Zr'", 0, 0, 0, 0.9, 0.006)
+ONE_ROW_PER_ELEMENT = (("Mg1", "Mg", 0, 0, 0, 0.504, 0.006), ("Ta1", "Ta", 0, 0, 0, 0.261, 0.006),
+                       ("Zr1", "Zr", 0, 0, 0, 0.135, 0.006))
+PEROVSKITE_A_AND_O = (("Sr1", "Sr2+", 0.5, 0.5, 0.5, 1, 0.008), ("O1", "O2-", 0.5, 0, 0, 1, 0.01))
+
+
+def test_mixed_type_symbol_site_equals_gemmi_on_one_row_per_element(tmp_path):
+    mixed = write_cif(tmp_path, "mixed", cif_text(atoms=(MIXED_ROW, *PEROVSKITE_A_AND_O), **PEROVSKITE))
+    plain = write_cif(tmp_path, "plain", cif_text(atoms=(*ONE_ROW_PER_ELEMENT, *PEROVSKITE_A_AND_O), **PEROVSKITE))
+    crystal = read_crystal(mixed)
+    rings, refl, ring_of = ring_list(crystal, d_min_angstrom=0.6)
+    assert_rings_equal_gemmi(rings, refl, ring_of, _gemmi_small_structure(plain))
+    # the ring list is the library's own for the conventional file too
+    rings_plain, _, _ = ring_list(read_crystal(plain), d_min_angstrom=0.6)
+    np.testing.assert_allclose(rings.intensity, rings_plain.intensity, rtol=1e-9, atol=1e-12)
 
 
 # ----------------------------------------------------------------- absences (ITA Vol. A)

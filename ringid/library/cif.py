@@ -12,15 +12,22 @@ symbol, then the Hermann–Mauguin symbol (``_space_group_name_H-M_alt`` /
 with two origin choices and does not say which, both are tried and the one that puts no
 two atoms on top of each other is used (origin choice 2 when both are clean), with a warning.
 
+Type symbols: an element with an optional charge (``O2-``, ``Fe3+``; scattered as the neutral
+atom, with a warning), or a site shared by several elements written in one row as fractions of
+the site (``0.8Nb + 0.2Zr``, ``0.56(4)Mg + 0.29(3)Ta + 0.15(5)Zr``): each element then gets
+occupancy fraction × ``_atom_site_occupancy`` on that position. Anything else is refused.
+
 Displacement parameters: U_iso, B_iso (B = 8π²U) or anisotropic U (U_eq is used). A site
 without any gets ``DEFAULT_U_ISO_ANGSTROM2`` and the phase records a warning.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import math
 import os
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -279,23 +286,58 @@ class _Site:
     fract: np.ndarray
     occ: float
     u: float
+    row: int  # the CIF atom-site row; the components of a mixed site share it
+
+
+#: One term of a mixed-site type symbol: a fraction (its standard uncertainty in parentheses
+#: ignored), an element symbol and an optional charge, as in ``0.56(4)Mg`` or ``0.5Fe2+``.
+_MIXED_TERM = r"(\d+(?:\.\d*)?|\.\d+)(?:\(\d+\))?\s*([A-Z][a-z]?)(\d*[+-])?"
+_MIXED_RE = re.compile(rf"\s*{_MIXED_TERM}(?:\s*\+\s*{_MIXED_TERM})*\s*")
+
+
+def _mixed_composition(path, symbol: str, label: str):
+    """The (element, fraction, charged) terms of a type symbol such as ``0.8Nb + 0.2Zr``; None if not that form.
+
+    Some databases write a site shared by several elements as one atom-site row whose type
+    symbol lists each element with its fraction of the site; the site's occupancy multiplies
+    every fraction. The fractions may sum to a little more than 1 by their rounding (half a
+    unit of the last digit written, per term); more is refused.
+    """
+    import gemmi
+
+    if not _MIXED_RE.fullmatch(symbol):
+        return None
+    terms = re.findall(_MIXED_TERM, symbol)
+    rounding = sum(0.5 * 10.0 ** -len(f.partition(".")[2]) for f, _, _ in terms)
+    total = sum(float(f) for f, _, _ in terms)
+    if total > 1.0 + rounding + 1e-9:
+        raise RingidError(path, f"the fractions in type symbol {symbol!r} at site {label} sum to {total:g} > 1")
+    if min(float(f) for f, _, _ in terms) <= 0:
+        raise RingidError(path, f"type symbol {symbol!r} at site {label} has a zero fraction")
+    merged: dict[str, list] = {}  # one scatterer per element (Fe2+ and Fe3+ are both neutral Fe here)
+    for fraction, element, charge in terms:
+        if gemmi.Element(element).atomic_number == 0:
+            raise RingidError(path, f"unknown element symbol {element!r} in type symbol {symbol!r} at site {label}")
+        entry = merged.setdefault(gemmi.Element(element).name, [0.0, False])
+        entry[0] += float(fraction)
+        entry[1] = entry[1] or bool(charge)
+    return [(element, fraction, charged) for element, (fraction, charged) in merged.items()]
 
 
 def _read_sites(path, block, small, warnings) -> list[_Site]:
-    """Check every asymmetric-unit site and fix its scattering element and U."""
+    """Check every asymmetric-unit site and fix its scattering element(s) and U.
+
+    A mixed-site type symbol (``0.8Nb + 0.2Zr``) becomes one ``_Site`` per element on the
+    same position, each with occupancy fraction × ``_atom_site_occupancy``.
+    """
     import gemmi
 
     sites = []
-    ionic, defaulted = [], []
-    for s in small.sites:
+    ionic, defaulted, vacant = [], [], []
+    for row, s in enumerate(small.sites):
         label = s.label or "?"
         symbol = s.type_symbol or label
-        if s.element.atomic_number == 0:
-            raise RingidError(path, f"unknown element symbol {symbol!r} at site {label}")
-        if s.element.atomic_number > 98:
-            raise RingidError(
-                path, f"element {s.element.name} at site {label} has no tabulated electron scattering factor (Z > 98)"
-            )
+        composition = _site_composition(path, s, label)
         xyz = np.array([s.fract.x, s.fract.y, s.fract.z], dtype=float)
         if not np.all(np.isfinite(xyz)):
             raise RingidError(path, f"site {label} has no numeric fractional coordinates")
@@ -304,7 +346,7 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
             raise RingidError(path, f"occupancy {s.occ} at site {label} is not positive")
         if occ > 1.0 + 1e-3:
             raise RingidError(path, f"occupancy {occ:g} > 1 at site {label}")
-        if s.charge:
+        if any(charged for _, _, charged in composition):
             ionic.append(f"{label} ({symbol})")
         if s.aniso.nonzero():
             u = float(small.cell.calculate_u_eq(gemmi.SMat33d(*s.aniso.elements_pdb())))
@@ -318,8 +360,13 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
         if u == 0:
             defaulted.append(label)
             u = DEFAULT_U_ISO_ANGSTROM2
-        sites.append(_Site(label, s.element.name, xyz, min(occ, 1.0), u))
-    labels = [s.label for s in sites]
+        total = sum(f for _, f, _ in composition)
+        if total < 1.0 - 1e-6:
+            vacant.append(f"{label} ({symbol}: {total:g})")
+        scale = 1.0 / total if total > 1.0 else 1.0  # a sum above 1 by rounding only (checked when parsed)
+        for element, fraction, _ in composition:
+            sites.append(_Site(label, element, xyz, min(occ, 1.0) * fraction * scale, u, row))
+    labels = [s.label or "?" for s in small.sites]
     dup = sorted({x for x in labels if labels.count(x) > 1})
     if dup:
         raise RingidError(path, f"duplicated atom site label(s) {', '.join(dup)}")
@@ -328,12 +375,57 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
             "ionic type symbols scattered as neutral atoms (ITC C Table 4.3.2.2 is for neutral atoms): "
             + ", ".join(ionic)
         )
+    if vacant:
+        warnings.append(
+            "mixed-site fractions summing to less than 1, the rest of the site taken as vacant: " + ", ".join(vacant)
+        )
     if defaulted:
         warnings.append(
             f"no displacement parameter for site(s) {', '.join(defaulted)}; used the default "
             f"U = {DEFAULT_U_ISO_ANGSTROM2} Å² (B = {8 * math.pi**2 * DEFAULT_U_ISO_ANGSTROM2:.2f} Å²)"
         )
     return sites
+
+
+#: An ordinary type symbol: an element, then an optional charge (``O2-``, ``Fe3+``, ``Nb+5``) or
+#: serial number (``O1``).
+_ORDINARY_RE = re.compile(r"\s*([A-Za-z]{1,2})\s*(\d*[+-]|[+-]\d+|\d*)\s*")
+
+
+def _site_composition(path, site, label: str) -> list[tuple[str, float, bool]]:
+    """(element, fraction of the site, charged) for one atom-site row; raises RingidError.
+
+    Without ``_atom_site_type_symbol`` the element comes from the label (gemmi's rule). A type
+    symbol must be an element with an optional charge, or a mixed site such as
+    ``0.8Nb + 0.2Zr``; anything else (``Nb + Zr``, ``Nb0.8Zr0.2``, ``Fe2+/Fe3+``) is refused
+    rather than read as its first element.
+    """
+    import gemmi
+
+    symbol = site.type_symbol
+    if not symbol:
+        if site.element.atomic_number == 0:
+            raise RingidError(path, f"unknown element symbol {label!r} at site {label}")
+        composition = [(site.element.name, 1.0, bool(site.charge))]
+    elif (ordinary := _ORDINARY_RE.fullmatch(symbol)) is not None:
+        if site.element.atomic_number == 0 or ordinary.group(1).lower() != site.element.name.lower():
+            raise RingidError(path, f"unknown element symbol {symbol!r} at site {label}")
+        charge = ordinary.group(2)
+        composition = [(site.element.name, 1.0, bool(charge) and not charge.isdigit())]
+    else:
+        composition = _mixed_composition(path, symbol, label)
+        if composition is None:
+            raise RingidError(
+                path,
+                f"cannot read type symbol {symbol!r} at site {label} (expected an element with an optional charge "
+                "such as 'Fe3+', or fractions of elements such as '0.8Nb + 0.2Zr')",
+            )
+    for element, _, _ in composition:
+        if gemmi.Element(element).atomic_number > 98:
+            raise RingidError(
+                path, f"element {element} at site {label} has no tabulated electron scattering factor (Z > 98)"
+            )
+    return composition
 
 
 def _resolve_space_group(path, block, small, sites, warnings):
@@ -454,7 +546,7 @@ def _expand(path, cell, sites, ops):
     rot, tran = _ops_arrays(ops)
     fract, elements, occ, u, labels = [], [], [], [], []
     owner = []
-    for i, s in enumerate(sites):
+    for s in sites:
         imgs = _images(cell, s, rot, tran)
         fract.append(imgs)
         n = len(imgs)
@@ -462,10 +554,12 @@ def _expand(path, cell, sites, ops):
         occ += [s.occ] * n
         u += [s.u] * n
         labels += [s.label] * n
-        owner += [i] * n
+        owner += [s.row] * n
     fract = np.vstack(fract)
     occ = np.asarray(occ)
-    _check_overlaps(path, cell, fract, occ, np.asarray(owner), [s.label for s in sites])
+    row_occ = {s.row: s.occ for s in _one_per_row(sites)}
+    _check_overlaps(path, cell, fract, np.array([row_occ[r] for r in owner]), np.asarray(owner),
+                    {s.row: s.label for s in sites})
     return fract, tuple(elements), occ, np.asarray(u), tuple(labels)
 
 
@@ -480,6 +574,7 @@ def _close_pairs(cell, fract, limit):
 
 
 def _check_overlaps(path, cell, fract, occ, owner, labels):
+    """Refuse atoms of different rows closer than MIN_SITE_SEPARATION whose rows' occupancies sum above 1."""
     if len(fract) > 3000:  # very large cells: skip the O(n²) check rather than stall
         return
     i, j, dist = _close_pairs(cell, fract, MIN_SITE_SEPARATION_ANGSTROM)
@@ -496,6 +591,16 @@ def _check_overlaps(path, cell, fract, occ, owner, labels):
             )
 
 
+def _one_per_row(sites: list[_Site]) -> list[_Site]:
+    """One site per CIF atom-site row (a mixed site's components merged), with the row's total occupancy."""
+    total: dict[int, float] = {}
+    first: dict[int, _Site] = {}
+    for s in sites:
+        total[s.row] = total.get(s.row, 0.0) + s.occ
+        first.setdefault(s.row, s)
+    return [dataclasses.replace(s, occ=total[row]) for row, s in first.items()]
+
+
 def _choose_origin(block, cell, sites, candidates):
     """Pick the origin choice under which the asymmetric unit makes a sensible cell.
 
@@ -505,19 +610,21 @@ def _choose_origin(block, cell, sites, candidates):
     """
     per_unit = _parse_formula(gemmi_string(block.find_value("_chemical_formula_sum")) or "")
     z = _number(block, "_cell_formula_units_Z")
+    positions = _one_per_row(sites)
     scored = []
     for sg in candidates:
         rot, tran = _ops_arrays(sg.operations())
-        images = [_images(cell, s, rot, tran) for s in sites]
+        images = [_images(cell, s, rot, tran) for s in positions]
         fract = np.vstack(images)
-        occ = np.concatenate([[s.occ] * len(im) for s, im in zip(sites, images)])
+        occ = np.concatenate([[s.occ] * len(im) for s, im in zip(positions, images)])
         i, j, _ = _close_pairs(cell, fract, MIN_SITE_SEPARATION_ANGSTROM)
         overlaps = bool(np.any(occ[i] + occ[j] > 1.0 + 1e-3))
         matches = True
         if per_unit and z:
+            n_images = {s.row: len(im) for s, im in zip(positions, images)}
             counts: dict[str, float] = {}
-            for s, im in zip(sites, images):
-                counts[s.element] = counts.get(s.element, 0.0) + s.occ * len(im)
+            for s in sites:
+                counts[s.element] = counts.get(s.element, 0.0) + s.occ * n_images[s.row]
             matches = all(abs(counts.get(e, 0.0) - z * n) < 0.05 * z * n for e, n in per_unit.items())
         scored.append(((overlaps, not matches, len(fract), sg.ext != "2"), sg))
     scored.sort(key=lambda t: t[0])

@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import json
 import os
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
@@ -118,15 +119,16 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
 
 
 def _site_table(crystal) -> list[dict]:
+    """One entry per site and element (a mixed site has one per element, under its one label)."""
+    keys = list(zip(crystal.labels, crystal.elements))
+    counts = Counter(keys)
     seen, out = set(), []
-    for lab, el, occ, u in zip(crystal.labels, crystal.elements, crystal.occupancy, crystal.u_iso_angstrom2):
-        if lab in seen:
+    for key, occ, u in zip(keys, crystal.occupancy, crystal.u_iso_angstrom2):
+        if key in seen:
             continue
-        seen.add(lab)
-        n = crystal.labels.count(lab)
-        out.append(
-            {"label": lab, "element": el, "occupancy": float(occ), "u_iso_angstrom2": float(u), "atoms_in_cell": n}
-        )
+        seen.add(key)
+        out.append({"label": key[0], "element": key[1], "occupancy": float(occ), "u_iso_angstrom2": float(u),
+                    "atoms_in_cell": counts[key]})
     return out
 
 
