@@ -154,6 +154,16 @@ def test_ionic_type_symbols_keep_working(tmp_path):
     assert any("neutral" in w and "Nb1 (Nb+5)" in w for w in c.warnings)
 
 
+def test_dot_coordinates_read_as_zero_when_the_file_writes_no_zero(tmp_path):
+    # CsCl type (Pm-3m, 1a + 1b; International Tables A) with the zeros of 1a written '.'
+    text = cif_text(formula="Cs Cl", cell=(4.12, 4.12, 4.12, 90, 90, 90),
+                    symmetry="_space_group_name_H-M_alt 'P m -3 m'\n",
+                    atoms=(("Cs1", "Cs", ".", ".", ".", 1, 0.02), ("Cl1", "Cl", 0.5, 0.5, 0.5, 1, 0.02)))
+    c = read_crystal(write_cif(tmp_path, "dots", text))
+    assert c.fract.tolist() == [[0, 0, 0], [0.5, 0.5, 0.5]]
+    assert any("'.' read as 0" in w and "Cs1 (x y z)" in w for w in c.warnings)
+
+
 def test_cif2_text(tmp_path):
     text = "#\\#CIF_2.0\n" + cif_text(extra="_publ_section_title\n'''Gold, film standard (Å)'''\n")
     c = read_crystal(write_cif(tmp_path, "cif2", text))
@@ -187,6 +197,13 @@ BAD = {
     "mixed_unknown": (cif_text(atoms=(("M1", "'0.8Nb + 0.2Qq'", 0, 0, 0, 1, 0.01),)), "unknown element symbol 'Qq'"),
     "mixed_overlap": (cif_text(atoms=(("M1", "'0.8Nb + 0.2Zr'", 0, 0, 0, 1, 0.01), ("O1", "O", 0, 0, 0, 0.1, 0.01))),
                       "duplicated atom sites: M1 and O1"),
+    # CIF 1.1 syntax: '?' is an unknown value (from memory)
+    "unknown_coordinate": (cif_text(atoms=(("Au1", "Au", 0.5, 0.5, "?", 1, 0.01),)),
+                           "site Au1 has an unknown fractional coordinate (_atom_site_fract_z is '?')"),
+    "dot_and_zero": (cif_text(atoms=(("Au1", "Au", 0, 0, 0, 1, 0.01), ("O1", "O", 0.5, 0.5, ".", 1, 0.01))),
+                     "site O1 has '.' for _atom_site_fract_z"),
+    "text_coordinate": (cif_text(atoms=(("Au1", "Au", "half", 0, 0, 1, 0.01),)),
+                        "not a number (_atom_site_fract_x half)"),
     "space_group": (cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"), "space group cannot be resolved"),
     "no_space_group": (cif_text(symmetry=""), "space group cannot be resolved"),
 }

@@ -132,6 +132,22 @@ def test_mixed_type_symbol_site_equals_gemmi_on_one_row_per_element(tmp_path):
     np.testing.assert_allclose(rings.intensity, rings_plain.intensity, rtol=1e-9, atol=1e-12)
 
 
+def test_dot_coordinates_equal_gemmi_on_the_zeros_written_out(tmp_path):
+    # rutile type (P4_2/mnm: Ti 2a at 0,0,0, O 4f at x,x,0; International Tables A) with every
+    # zero coordinate written '.', and the same file with the zeros written as numbers
+    rutile = dict(formula="Ti O2", cell=(4.5937, 4.5937, 2.9587, 90, 90, 90),
+                  symmetry="_space_group_name_H-M_alt 'P 42/m n m'\n")
+    dots = (("Ti1", "Ti", ".", ".", ".", 1, 0.006), ("O1", "O", 0.3048, 0.3048, ".", 1, 0.008))
+    zeros = (("Ti1", "Ti", 0, 0, 0, 1, 0.006), ("O1", "O", 0.3048, 0.3048, 0, 1, 0.008))
+    crystal = read_crystal(write_cif(tmp_path, "dots", cif_text(atoms=dots, **rutile)))
+    assert any("'.' read as 0" in w for w in crystal.warnings)
+    rings, refl, ring_of = ring_list(crystal, d_min_angstrom=0.6)
+    st = _gemmi_small_structure(write_cif(tmp_path, "zeros", cif_text(atoms=zeros, **rutile)))
+    # source: International Tables A, P4_2/mnm 2a + 4f: 2 Ti + 4 O per cell
+    assert len(st.get_all_unit_cell_sites()) == len(crystal.fract) == 6
+    assert_rings_equal_gemmi(rings, refl, ring_of, st)
+
+
 # ----------------------------------------------------------------- absences (ITA Vol. A)
 
 

@@ -334,13 +334,12 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
 
     sites = []
     ionic, defaulted, vacant = [], [], []
+    coordinates = _fractional_coordinates(path, block, small, warnings)
     for row, s in enumerate(small.sites):
         label = s.label or "?"
         symbol = s.type_symbol or label
         composition = _site_composition(path, s, label)
-        xyz = np.array([s.fract.x, s.fract.y, s.fract.z], dtype=float)
-        if not np.all(np.isfinite(xyz)):
-            raise RingidError(path, f"site {label} has no numeric fractional coordinates")
+        xyz = coordinates[row]
         occ = float(s.occ)
         if not math.isfinite(occ) or occ <= 0:
             raise RingidError(path, f"occupancy {s.occ} at site {label} is not positive")
@@ -385,6 +384,57 @@ def _read_sites(path, block, small, warnings) -> list[_Site]:
             f"U = {DEFAULT_U_ISO_ANGSTROM2} Å² (B = {8 * math.pi**2 * DEFAULT_U_ISO_ANGSTROM2:.2f} Å²)"
         )
     return sites
+
+
+def _fractional_coordinates(path, block, small, warnings) -> list[np.ndarray]:
+    """Fractional coordinates of every atom-site row, with ``.`` read as 0 where that is defensible.
+
+    In CIF a lone ``?`` marks a value as unknown and a lone ``.`` as inapplicable or as the
+    dictionary's default (CIF 1.1 syntax specification, International Tables for
+    Crystallography Vol. G (2005) Sect. 2.2.7; from memory). A coordinate is never
+    inapplicable and the core dictionary gives ``_atom_site_fract_x``/``_y``/``_z`` no default
+    (from memory), so ``.`` has no value of its own there; some exports write it for a zero
+    coordinate. It is read as 0 only when the file writes no zero coordinate as a number (so
+    ``.`` is the file's way of writing zero), with a warning naming the sites; if the file also
+    writes numeric zeros, ``.`` means something else and the file is refused. ``?`` and
+    non-numeric text are refused.
+    """
+    raw_columns = [block.find_values(f"_atom_site_fract_{axis}") for axis in "xyz"]
+    aligned = all(len(col) == len(small.sites) for col in raw_columns)
+    coordinates, dotted, zero_label = [], [], None
+    for row, s in enumerate(small.sites):
+        label = s.label or "?"
+        xyz = np.array([s.fract.x, s.fract.y, s.fract.z], dtype=float)
+        if zero_label is None and np.any(xyz == 0):
+            zero_label = label
+        missing = [k for k in range(3) if not math.isfinite(xyz[k])]
+        if missing and not aligned:
+            raise RingidError(path, f"site {label} has no numeric fractional coordinates")
+        for k in missing:
+            raw, name = raw_columns[k][row], f"_atom_site_fract_{'xyz'[k]}"
+            if raw == "?":
+                raise RingidError(path, f"site {label} has an unknown fractional coordinate ({name} is '?')")
+            if raw != ".":
+                raise RingidError(path, f"site {label} has a fractional coordinate that is not a number ({name} {raw})")
+            dotted.append((label, "xyz"[k]))
+            xyz[k] = 0.0
+        coordinates.append(xyz)
+    if dotted and zero_label is not None:
+        label, axis = dotted[0]
+        raise RingidError(
+            path,
+            f"site {label} has '.' for _atom_site_fract_{axis} (no value: CIF's inapplicable/default mark, and "
+            f"coordinates have no default), while this file writes zero coordinates as numbers (site {zero_label})",
+        )
+    if dotted:
+        by_site: dict[str, str] = {}
+        for label, axis in dotted:
+            by_site[label] = by_site.get(label, "") + axis
+        warnings.append(
+            "fractional coordinates written '.' read as 0 (the file writes no zero coordinate as a number): "
+            + ", ".join(f"{label} ({' '.join(axes)})" for label, axes in by_site.items())
+        )
+    return coordinates
 
 
 #: An ordinary type symbol: an element, then an optional charge (``O2-``, ``Fe3+``, ``Nb+5``) or
