@@ -49,6 +49,79 @@ def test_old_symmetry_tags_and_hall(tmp_path):
     assert c.space_group_number == 2 and len(c.fract) == 1
 
 
+FCC_SYMMETRY_ALIASES = {
+    # source: International Tables A, No. 225 F m -3 m, full symbol F 4/m -3 2/m; Hall symbol
+    # -F 4 2 3 (International Tables B, Table A1.4.2.7); tag names from cif_core.dic, cif_sym.dic
+    # and mmcif_std.dic (from memory)
+    "ref": "_space_group_name_H-M_ref 'F m -3 m'\n",
+    "ref_ddlm": "_space_group.name_H-M_ref 'F m -3 m'\n",
+    "full": "_space_group_name_H-M_full 'F 4/m -3 2/m'\n",
+    "full_ddlm": "_space_group.name_H-M_full 'F 4/m -3 2/m'\n",
+    "alt_ddlm": "_space_group.name_H-M_alt 'F m -3 m'\n",
+    "mmcif_hm": "_symmetry.space_group_name_H-M 'F m -3 m'\n",
+    "hall_ddlm": "_space_group.name_Hall '-F 4 2 3'\n",
+    "mmcif_hall": "_symmetry.space_group_name_Hall '-F 4 2 3'\n",
+    "number_ddlm": "_space_group.IT_number 225\n",
+    "mmcif_number": "_symmetry.Int_Tables_number 225\n",
+}
+
+
+@pytest.mark.parametrize("name", sorted(FCC_SYMMETRY_ALIASES))
+def test_space_group_from_any_symmetry_tag(tmp_path, name):
+    c = read_crystal(write_cif(tmp_path, name, cif_text(symmetry=FCC_SYMMETRY_ALIASES[name])))
+    assert c.space_group_number == 225 and len(c.fract) == 4  # Fm-3m 4a: 4 atoms (International Tables A)
+
+
+def test_symop_loop_with_ddlm_tag(tmp_path):
+    text = cif_text(symmetry=FCC_OPS.replace("_space_group_symop_operation_xyz", "_space_group_symop.operation_xyz"))
+    c = read_crystal(write_cif(tmp_path, "ddlm", text))
+    assert len(c.fract) == 4 and len(c.centring_vectors) == 4
+
+
+# Full H-M symbols (only tag) -> IT number and general-position multiplicity.
+# source: International Tables A (full symbols and Wyckoff tables; from memory)
+FULL_SYMBOLS = [
+    ("P 21/n 21/m 21/a", 62, 8, (5.0, 6.0, 7.0, 90, 90, 90)),
+    ("C 2/m 2/c 21/m", 63, 16, (5.0, 6.0, 7.0, 90, 90, 90)),
+    ("P 42/m 21/n 2/m", 136, 16, (6.0, 6.0, 4.0, 90, 90, 90)),
+    ("P 63/m 2/m 2/c", 194, 24, (5.0, 5.0, 8.0, 90, 90, 120)),
+    ("P -3 2/m 1", 164, 12, (5.0, 5.0, 8.0, 90, 90, 120)),
+    ("I 41/a -3 2/d", 230, 96, (12.0, 12.0, 12.0, 90, 90, 90)),
+    ("P 1 21/c 1", 14, 4, (5.0, 6.0, 7.0, 90, 100, 90)),
+]
+
+
+@pytest.mark.parametrize("symbol, number, multiplicity, cell", FULL_SYMBOLS)
+def test_full_hm_symbol(tmp_path, symbol, number, multiplicity, cell):
+    text = cif_text(cell=cell, symmetry=f"_space_group_name_H-M_full '{symbol}'\n",
+                    atoms=(("Au1", "Au", 0.13, 0.31, 0.27, 1, 0.01),))  # a general position
+    c = read_crystal(write_cif(tmp_path, "full", text))
+    assert c.space_group_number == number and len(c.fract) == multiplicity
+
+
+def test_r_symbol_on_rhombohedral_axes(tmp_path):
+    # corundum on rhombohedral axes, a = 5.128 Å, alpha = 55.28° (R -3 c, Al 4c at x,x,x and
+    # O 6e at x,1/2-x,1/4): 4 Al + 6 O per rhombohedral cell (International Tables A, R-3c
+    # rhombohedral axes; cell and coordinates from memory); hexagonal-axes operators would
+    # put 3 times as many atoms in it
+    text = cif_text(formula="Al2 O3", cell=(5.128, 5.128, 5.128, 55.28, 55.28, 55.28),
+                    symmetry="_space_group_name_H-M_ref 'R -3 c'\n",
+                    atoms=(("Al1", "Al", 0.3523, 0.3523, 0.3523, 1, 0.003),
+                           ("O1", "O", 0.5561, -0.0561, 0.25, 1, 0.004)))
+    c = read_crystal(write_cif(tmp_path, "corundum_rh", text))
+    assert c.space_group_symbol == "R -3 c:R"
+    assert sorted(c.elements).count("Al") == 4 and sorted(c.elements).count("O") == 6
+    # source: corundum density 3.99 g/cm³ (CRC Handbook, from memory; as in test_reference_phases)
+    assert c.density_g_cm3 == pytest.approx(3.99, rel=0.01)
+
+
+def test_hm_symbols_that_disagree_are_reported(tmp_path):
+    text = cif_text(symmetry="_space_group_name_H-M_alt 'F m -3 m'\n_space_group_name_H-M_ref 'P m -3 m'\n")
+    c = read_crystal(write_cif(tmp_path, "two", text))
+    assert c.space_group_number == 225
+    assert any("name different space groups" in w for w in c.warnings)
+
+
 def test_number_only_uses_reference_setting_with_warning(tmp_path):
     c = read_crystal(write_cif(tmp_path, "Au", cif_text(symmetry="_space_group_IT_number 225\n")))
     assert len(c.fract) == 4
@@ -205,6 +278,7 @@ BAD = {
     "text_coordinate": (cif_text(atoms=(("Au1", "Au", "half", 0, 0, 1, 0.01),)),
                         "not a number (_atom_site_fract_x half)"),
     "space_group": (cif_text(symmetry="_space_group_name_H-M_alt 'Q 9 z'\n"), "space group cannot be resolved"),
+    "space_group_ref": (cif_text(symmetry="_space_group_name_H-M_ref 'F m 9 m'\n"), "unknown H-M symbol 'F m 9 m'"),
     "no_space_group": (cif_text(symmetry=""), "space group cannot be resolved"),
 }
 

@@ -7,10 +7,13 @@ atoms). What it does not do: structure factors (``ringid.library``).
 
 Space-group resolution order: the symmetry-operator loop
 (``_space_group_symop_operation_xyz`` / ``_symmetry_equiv_pos_as_xyz``), then the Hall
-symbol, then the Hermann–Mauguin symbol (``_space_group_name_H-M_alt`` /
-``_symmetry_space_group_name_H-M``), then the IT number. When an H-M symbol names a group
-with two origin choices and does not say which, both are tried and the one that puts no
-two atoms on top of each other is used (origin choice 2 when both are clean), with a warning.
+symbol, then the Hermann–Mauguin symbol (``_space_group_name_H-M_alt``,
+``_symmetry_space_group_name_H-M``, ``_space_group_name_H-M_ref``, ``_space_group_name_H-M_full``;
+a full symbol is shortened), then the IT number; each tag also in its DDLm/mmCIF spelling
+(``_space_group.name_H-M_alt``, ``_symmetry.Int_Tables_number``, ...). When an H-M symbol names
+a group with two origin choices and does not say which, both are tried and the one that puts no
+two atoms on top of each other is used (origin choice 2 when both are clean), with a warning;
+an R symbol without :H or :R takes the axes the cell angles show.
 
 Type symbols: an element with an optional charge (``O2-``, ``Fe3+``; scattered as the neutral
 atom, with a warning), or a site shared by several elements written in one row as fractions of
@@ -48,10 +51,28 @@ MIN_SITE_SEPARATION_ANGSTROM = 0.5
 #: written with rounded coordinates such as 0.3333).
 SAME_ATOM_TOLERANCE_ANGSTROM = 0.05
 
-_HM_TAGS = ("_space_group_name_H-M_alt", "_symmetry_space_group_name_H-M", "_space_group.name_H-M_full")
-_HALL_TAGS = ("_space_group_name_Hall", "_symmetry_space_group_name_Hall")
-_NUMBER_TAGS = ("_space_group_IT_number", "_symmetry_Int_Tables_number")
-_SYMOP_TAGS = ("_space_group_symop_operation_xyz", "_symmetry_equiv_pos_as_xyz")
+# Symmetry tags, each in the order tried: the CIF 1.1 core name, its DDLm spelling with a dot,
+# the older core name it replaced and that one's mmCIF spelling (cif_core.dic, cif_sym.dic and
+# mmcif_std.dic; from memory). For H-M: _alt (any setting) before _ref (the reference setting)
+# and _full (the full symbol, converted to the short one gemmi knows).
+_HM_TAGS = (
+    "_space_group_name_H-M_alt", "_space_group.name_H-M_alt",
+    "_symmetry_space_group_name_H-M", "_symmetry.space_group_name_H-M",
+    "_space_group_name_H-M_ref", "_space_group.name_H-M_ref",
+    "_space_group_name_H-M_full", "_space_group.name_H-M_full",
+)
+_HALL_TAGS = (
+    "_space_group_name_Hall", "_space_group.name_Hall",
+    "_symmetry_space_group_name_Hall", "_symmetry.space_group_name_Hall",
+)
+_NUMBER_TAGS = (
+    "_space_group_IT_number", "_space_group.IT_number",
+    "_symmetry_Int_Tables_number", "_symmetry.Int_Tables_number",
+)
+_SYMOP_TAGS = (
+    "_space_group_symop_operation_xyz", "_space_group_symop.operation_xyz",
+    "_symmetry_equiv_pos_as_xyz", "_symmetry_equiv.pos_as_xyz",
+)
 _TITLE_TAGS = (
     "_chemical_name_common",
     "_chemical_name_mineral",
@@ -492,9 +513,13 @@ def _resolve_space_group(path, block, small, sites, warnings):
         (gemmi.cif.as_string(block.find_value(t)) for t in _HALL_TAGS if block.find_value(t) not in (None, "?", ".")),
         "",
     )
-    hm = next(
-        (gemmi.cif.as_string(block.find_value(t)) for t in _HM_TAGS if block.find_value(t) not in (None, "?", ".")), ""
-    )
+    hm_given = [gemmi_string(block.find_value(t)) or "" for t in _HM_TAGS]
+    hm_given = [h for h in hm_given if h.strip()]
+    # the first H-M symbol gemmi can resolve (a later tag may hold a form an earlier one lacks)
+    resolved = [(h, _hm_candidates(h, small.cell)) for h in hm_given]
+    hm, candidates = next(((h, c) for h, c in resolved if c), (hm_given[0] if hm_given else "", []))
+    if len({c[0].number for _, c in resolved if c}) > 1:
+        warnings.append(f"the H-M symbols {', '.join(map(repr, hm_given))} name different space groups; used {hm!r}")
     number = next((_number(block, t) for t in _NUMBER_TAGS if _number(block, t) is not None), None)
 
     if symops:
@@ -504,9 +529,9 @@ def _resolve_space_group(path, block, small, sites, warnings):
             raise RingidError(path, f"cannot read the symmetry operators: {_first_line(exc)}") from None
         ops = _close_group(path, ops)
         sg = gemmi.find_spacegroup_by_ops(ops)
-        if hm and sg is not None:
-            named = gemmi.find_spacegroup_by_name(hm)
-            if named is not None and named.number != sg.number:
+        if candidates and sg is not None:
+            named = candidates[0]
+            if named.number != sg.number:
                 warnings.append(
                     f"H-M symbol {hm!r} disagrees with the symmetry operators ({sg.xhm()}); used the operators"
                 )
@@ -518,7 +543,6 @@ def _resolve_space_group(path, block, small, sites, warnings):
             raise RingidError(path, f"the space group cannot be resolved: unknown Hall symbol {hall!r}") from None
         return gemmi.find_spacegroup_by_ops(ops), ops
     if hm:
-        candidates = _hm_candidates(hm)
         if not candidates:
             raise RingidError(
                 path, f"the space group cannot be resolved: unknown H-M symbol {hm!r} and no symmetry operators"
@@ -540,10 +564,18 @@ def _resolve_space_group(path, block, small, sites, warnings):
     )
 
 
-def _hm_candidates(hm: str):
+def _hm_candidates(hm: str, cell):
+    """Space groups an H-M symbol may mean: one, or both origin choices when it does not say which.
+
+    The cell angles pick rhombohedral or hexagonal axes for an R symbol that does not say (gemmi).
+    """
     import gemmi
 
-    sg = gemmi.find_spacegroup_by_name(hm)
+    angles = (cell.alpha, cell.gamma)
+    sg = gemmi.find_spacegroup_by_name(hm, *angles)
+    if sg is None:
+        hm = _short_hm(hm)
+        sg = gemmi.find_spacegroup_by_name(hm, *angles)
     if sg is None:
         return []
     if ":" in hm or not sg.ext or sg.ext not in "12":
@@ -551,10 +583,33 @@ def _hm_candidates(hm: str):
     base = hm.strip()
     out = []
     for choice in ("1", "2"):
-        alt = gemmi.find_spacegroup_by_name(f"{base}:{choice}")
+        alt = gemmi.find_spacegroup_by_name(f"{base}:{choice}", *angles)
         if alt is not None:
             out.append(alt)
     return out or [sg]
+
+
+def _short_hm(symbol: str) -> str:
+    """The short H-M symbol of a full one: 'P 21/n 21/m 21/a' → 'P n m a', 'F 4/m -3 2/m' → 'F m -3 m'.
+
+    Rules of the short symbols (International Tables for Crystallography Vol. A, Sect. 4.1;
+    from memory): a position written rotation/plane keeps only the plane, except the principal
+    axis of a tetragonal or hexagonal group ('P 42/m 21/n 2/m' → 'P 42/m n m') and the unique
+    axis of a monoclinic one ('P 1 21/c 1' stays); cubic groups (second position 3 or -3) keep
+    no rotation part ('I 41/a -3 2/d' → 'I a -3 d'). A symbol without '/' is returned as it is.
+    """
+    head, colon, setting = symbol.partition(":")
+    lattice, *positions = head.split()
+    if not positions or "/" not in head:
+        return symbol
+    cubic = len(positions) > 1 and positions[1] in ("3", "-3")
+    monoclinic = sum(p != "1" for p in positions) == 1
+    principal = not cubic and positions[0].lstrip("-")[:1] in ("3", "4", "6")
+    short = [
+        p if "/" not in p or monoclinic or (i == 0 and principal) else p.split("/", 1)[1]
+        for i, p in enumerate(positions)
+    ]
+    return " ".join([lattice, *short]) + colon + setting
 
 
 def _close_group(path, ops):
