@@ -122,6 +122,15 @@ def test_hm_symbols_that_disagree_are_reported(tmp_path):
     assert any("name different space groups" in w for w in c.warnings)
 
 
+def test_operators_without_identity_are_completed_with_a_warning(tmp_path):
+    text = cif_text(symmetry="loop_\n_symmetry_equiv_pos_as_xyz\n-x,-y,-z\n",
+                    atoms=(("Au1", "Au", 0.1, 0.2, 0.3, 1, 0.01),))
+    c = read_crystal(write_cif(tmp_path, "inversion_only", text))
+    # the inversion generates P -1 (International Tables A, No. 2): 2 atoms at a general position
+    assert c.space_group_number == 2 and len(c.fract) == 2
+    assert any("the 1 distinct symmetry operator listed is not a group" in w for w in c.warnings)
+
+
 def test_number_only_uses_reference_setting_with_warning(tmp_path):
     c = read_crystal(write_cif(tmp_path, "Au", cif_text(symmetry="_space_group_IT_number 225\n")))
     assert len(c.fract) == 4

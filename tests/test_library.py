@@ -148,6 +148,26 @@ def test_dot_coordinates_equal_gemmi_on_the_zeros_written_out(tmp_path):
     assert_rings_equal_gemmi(rings, refl, ring_of, st)
 
 
+def test_operator_list_that_is_not_a_group_is_completed_with_a_warning(tmp_path):
+    # 6 of the 12 operators of P6_3mc (International Tables A, No. 186): x,y,z, the 3-fold
+    # -y,x-y,z, the 2_1 -x,-y,z+1/2 and three mirrors; not a group (the 3-fold's square
+    # -x+y,-x,z is missing) but they generate all 12
+    kept = ["'x,y,z'", "'-y,x-y,z'", "'-x,-y,z+1/2'", "'-y,-x,z'", "'x,x-y,z'", "'-x+y,y,z'"]
+    text = (REFERENCE_PHASES / "ZnO.cif").read_text(encoding="utf-8")
+    ops_block = text.split("_space_group_symop_operation_xyz\n", 1)[1].split("loop_", 1)[0]
+    assert len(ops_block.split()) == 12 and set(kept) < set(ops_block.split())
+    cifs = tmp_path / "cifs"
+    cifs.mkdir()
+    (cifs / "ZnO.cif").write_text(text, encoding="utf-8")
+    (cifs / "ZnO_half.cif").write_text(text.replace(ops_block, "\n".join(kept) + "\n"), encoding="utf-8")
+    records = {r["phase"]: r for r in build_library(cifs, tmp_path / "lib")}
+    warning = "the 6 distinct symmetry operators listed are not a group; completed to the 12 operators they generate"
+    assert any(w.startswith(warning) and "P 63 m c" in w for w in records["ZnO_half"]["warnings"])
+    assert not any("not a group" in w for w in records["ZnO"]["warnings"])
+    rings = tmp_path / "lib" / "rings"
+    assert (rings / "ZnO_half.csv").read_text() == (rings / "ZnO.csv").read_text()
+
+
 # ----------------------------------------------------------------- absences (ITA Vol. A)
 
 

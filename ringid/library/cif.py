@@ -524,11 +524,18 @@ def _resolve_space_group(path, block, small, sites, warnings):
 
     if symops:
         try:
-            ops = gemmi.GroupOps([gemmi.Op(t) for t in symops])
+            listed = [gemmi.Op(t) for t in symops]
         except (RuntimeError, ValueError) as exc:
             raise RingidError(path, f"cannot read the symmetry operators: {_first_line(exc)}") from None
-        ops = _close_group(path, ops)
+        ops, n_listed = _close_group(path, listed)
         sg = gemmi.find_spacegroup_by_ops(ops)
+        if len(ops) != n_listed:
+            listed_text = "1 distinct symmetry operator listed is" if n_listed == 1 else \
+                f"{n_listed} distinct symmetry operators listed are"
+            warnings.append(
+                f"the {listed_text} not a group; completed to the {len(ops)} operators they generate "
+                f"({sg.xhm() if sg is not None else 'a non-standard setting'})"
+            )
         if candidates and sg is not None:
             named = candidates[0]
             if named.number != sg.number:
@@ -612,13 +619,34 @@ def _short_hm(symbol: str) -> str:
     return " ".join([lattice, *short]) + colon + setting
 
 
-def _close_group(path, ops):
-    """Complete the operators to a group (some CIFs list only generators); gemmi does it."""
+def _close_group(path, listed):
+    """The group the listed operators generate, and how many distinct operators were listed.
+
+    Completing is right when every listed operator is a symmetry of the structure: products of
+    symmetries are symmetries, so the generated group follows from the list itself. Lists that
+    are not groups are usually generator-only or cut short (the dictionaries ask for every
+    operator of the space group; from memory). An operator that is wrong would generate too
+    large a group; the overlap check catches most of those, and the caller warns whenever
+    operators were added. Operators equal modulo lattice translations count once; the identity
+    is added if missing (gemmi's GroupOps needs it to find the centring vectors).
+    """
+    import gemmi
+
+    seen, distinct = set(), []
+    for op in listed:
+        key = op.wrap().triplet()
+        if key not in seen:
+            seen.add(key)
+            distinct.append(op)
+    n_listed = len(distinct)
+    if gemmi.Op("x,y,z").triplet() not in seen:
+        distinct.insert(0, gemmi.Op("x,y,z"))
+    ops = gemmi.GroupOps(distinct)
     try:
         ops.add_missing_elements()
     except RuntimeError as exc:
         raise RingidError(path, f"the symmetry operators do not form a space group: {_first_line(exc)}") from None
-    return ops
+    return ops, n_listed
 
 
 def _ops_arrays(ops):
