@@ -166,6 +166,9 @@ def test_operator_list_that_is_not_a_group_is_completed_with_a_warning(tmp_path)
     assert not any("not a group" in w for w in records["ZnO"]["warnings"])
     rings = tmp_path / "lib" / "rings"
     assert (rings / "ZnO_half.csv").read_text() == (rings / "ZnO.csv").read_text()
+    with open(tmp_path / "lib" / "index.csv", newline="") as fh:
+        index = {r["phase"]: r for r in csv.DictReader(fh)}
+    assert warning in index["ZnO_half"]["warnings"] and "not a group" not in index["ZnO"]["warnings"]
 
 
 # ----------------------------------------------------------------- absences (ITA Vol. A)

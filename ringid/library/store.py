@@ -29,8 +29,10 @@ from ringid.library.structure import (
 RING_COLUMNS = ["d_angstrom", "g_per_nm", "intensity", "multiplicity", "hkl", "double_diffraction", "f_squared_sum"]
 INDEX_COLUMNS = [
     "phase", "formula", "space_group", "a", "b", "c", "alpha", "beta", "gamma",
-    "n_rings", "cif_sha256", "status", "error", "title",
+    "n_rings", "cif_sha256", "status", "error", "warnings", "title",
 ]
+#: Separator of a phase's warnings in the one ``warnings`` field of ``index.csv``.
+INDEX_WARNING_SEPARATOR = " | "
 
 
 def phase_paths(library_dir: str | os.PathLike, phase: str) -> dict[str, Path]:
@@ -229,6 +231,7 @@ def write_index(library_dir: str | os.PathLike, phases: list[str] | None = None)
                 "cif_sha256": rec.get("cif_sha256", ""),
                 "status": rec.get("status", "failed"),
                 "error": rec.get("error", ""),
+                "warnings": INDEX_WARNING_SEPARATOR.join(rec.get("warnings", [])),
                 "title": rec.get("title", ""),
             }
         )
