@@ -697,13 +697,22 @@ def _expand(path, cell, sites, ops):
 
 
 def _close_pairs(cell, fract, limit):
-    """Index pairs (i < j) of atoms closer than ``limit`` Å, minimum image."""
+    """Index pairs (i < j) of atoms closer than ``limit`` Å (minimum image) and their distances.
+
+    Rows in blocks of 256 atoms, so the work arrays stay near 256 × n × 3 numbers.
+    """
     orth = np.array(cell.orth.mat.tolist())
-    diff = fract[:, None, :] - fract[None, :, :]
-    diff -= np.round(diff)
-    dist = np.linalg.norm(diff @ orth.T, axis=2)
-    i, j = np.nonzero(np.triu(dist < limit, k=1))
-    return i, j, dist
+    found_i, found_j, found_d = [], [], []
+    for start in range(0, len(fract), 256):
+        diff = fract[start : start + 256, None, :] - fract[None, :, :]
+        diff -= np.round(diff)
+        dist = np.linalg.norm(diff @ orth.T, axis=2)
+        rows = np.arange(start, start + len(dist))[:, None]
+        i, j = np.nonzero((dist < limit) & (np.arange(len(fract))[None, :] > rows))
+        found_i.append(i + start)
+        found_j.append(j)
+        found_d.append(dist[i, j])
+    return np.concatenate(found_i), np.concatenate(found_j), np.concatenate(found_d)
 
 
 def _check_overlaps(path, cell, fract, occ, owner, labels):
@@ -711,15 +720,15 @@ def _check_overlaps(path, cell, fract, occ, owner, labels):
     if len(fract) > 3000:  # very large cells: skip the O(n²) check rather than stall
         return
     i, j, dist = _close_pairs(cell, fract, MIN_SITE_SEPARATION_ANGSTROM)
-    for a, b in zip(i, j):
+    for a, b, d in zip(i, j, dist):
         if owner[a] == owner[b]:
             continue  # images of one site too close together are handled as the same atom above
         if occ[a] + occ[b] > 1.0 + 1e-3:
             la, lb = labels[owner[a]], labels[owner[b]]
-            what = "duplicated atom sites" if dist[a, b] < SAME_ATOM_TOLERANCE_ANGSTROM else "atoms too close"
+            what = "duplicated atom sites" if d < SAME_ATOM_TOLERANCE_ANGSTROM else "atoms too close"
             raise RingidError(
                 path,
-                f"{what}: {la} and {lb} are {dist[a, b]:.3f} Å apart with total occupancy {occ[a] + occ[b]:g} > 1 "
+                f"{what}: {la} and {lb} are {d:.3f} Å apart with total occupancy {occ[a] + occ[b]:g} > 1 "
                 "(wrong space group setting or origin choice?)",
             )
 
