@@ -84,16 +84,26 @@ def reciprocal_metric(cell) -> np.ndarray:
 
 
 def enumerate_hkl(cell, d_min_angstrom: float) -> tuple[np.ndarray, np.ndarray]:
-    """All integer hkl ≠ 000 with d ≥ d_min; returns (hkl (n, 3) int, d (n,) Å)."""
+    """All integer hkl ≠ 000 with d ≥ d_min; returns (hkl (n, 3) int, d (n,) Å).
+
+    Ordered by h, then k, then l. One h at a time, so the work arrays hold one (k, l) plane of
+    the index box, not the whole box.
+    """
     gstar = reciprocal_metric(cell)
     g_max = 1.0 / d_min_angstrom
     # |h| = |g · a| ≤ g_max |a|, likewise k, l
     lim = np.floor(np.array(cell[:3]) * g_max).astype(int)
-    axes = [np.arange(-n, n + 1) for n in lim]
-    hkl = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
-    inv_d2 = np.einsum("ni,ij,nj->n", hkl, gstar, hkl)
-    keep = (inv_d2 > 0) & (inv_d2 <= g_max**2 * (1 + 1e-12))
-    return hkl[keep], 1.0 / np.sqrt(inv_d2[keep])
+    k_axis, l_axis = (np.arange(-n, n + 1) for n in lim[1:])
+    plane = np.stack(np.meshgrid(np.zeros(1, dtype=k_axis.dtype), k_axis, l_axis, indexing="ij"), axis=-1)
+    plane = plane.reshape(-1, 3)
+    hkl_parts, d_parts = [], []
+    for h in range(-lim[0], lim[0] + 1):
+        plane[:, 0] = h
+        inv_d2 = np.einsum("ni,ij,nj->n", plane, gstar, plane)
+        keep = (inv_d2 > 0) & (inv_d2 <= g_max**2 * (1 + 1e-12))
+        hkl_parts.append(plane[keep])
+        d_parts.append(1.0 / np.sqrt(inv_d2[keep]))
+    return np.concatenate(hkl_parts), np.concatenate(d_parts)
 
 
 def centring_absent(hkl: np.ndarray, centring_vectors) -> np.ndarray:
@@ -114,16 +124,17 @@ def structure_factors(crystal, hkl: np.ndarray, d_angstrom: np.ndarray) -> np.nd
     """
     s2 = 0.25 / d_angstrom**2
     unique = sorted(set(crystal.elements))
-    f_el = electron_scattering_factors(unique, s2)  # (n_refl, n_el)
     col = np.array([unique.index(e) for e in crystal.elements])
     b_iso = 8.0 * math.pi**2 * crystal.u_iso_angstrom2  # (n_at,)
-    weight = f_el[:, col] * crystal.occupancy * np.exp(-np.multiply.outer(s2, b_iso))
     F = np.empty(len(hkl), dtype=complex)
-    chunk = max(1, 4_000_000 // max(1, len(crystal.elements)))
+    # reflections per chunk: each (reflections × atoms) work array holds 2^20 numbers (8 MB)
+    chunk = max(1, 2**20 // max(1, len(crystal.elements)))
     for start in range(0, len(hkl), chunk):
         sl = slice(start, start + chunk)
+        f_el = electron_scattering_factors(unique, s2[sl])  # (chunk, n_el)
+        weight = f_el[:, col] * crystal.occupancy * np.exp(-np.multiply.outer(s2[sl], b_iso))
         phase = 2.0 * math.pi * (hkl[sl].astype(float) @ crystal.fract.T)
-        F[sl] = (weight[sl] * np.cos(phase)).sum(axis=1) + 1j * (weight[sl] * np.sin(phase)).sum(axis=1)
+        F[sl] = (weight * np.cos(phase)).sum(axis=1) + 1j * (weight * np.sin(phase)).sum(axis=1)
     return F
 
 
@@ -136,11 +147,19 @@ def compute_reflections(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM)
     return Reflections(hkl=hkl, d_angstrom=d, f_squared=f2)
 
 
+#: Forbidden reflections tried together against one block of 64 partners in
+#: double_diffraction_possible (bounds its work arrays to about 50 MB).
+_DD_CANDIDATE_CHUNK = 16384
+
+
 def double_diffraction_possible(hkl: np.ndarray, forbidden: np.ndarray) -> np.ndarray:
     """For each forbidden reflection, whether it is the sum of two allowed reflections.
 
-    Both partners must lie in the enumerated set (d ≥ d_min). Low-order partners are
-    tried first, which settles nearly every case after one pass.
+    Both partners must lie in the enumerated set (d ≥ d_min). A sum of allowed reflections
+    lies in the integer lattice they generate, so forbidden reflections outside it (a hidden
+    lattice centring, as in a P1 description of a centred structure) are settled at once;
+    for the others low-order partners are tried first, which settles nearly every case after
+    one pass.
     """
     allowed = hkl[~forbidden]
     cand_idx = np.flatnonzero(forbidden)
@@ -157,19 +176,75 @@ def double_diffraction_possible(hkl: np.ndarray, forbidden: np.ndarray) -> np.nd
     allowed_keys = np.sort(key(allowed))
     order = np.argsort(np.einsum("ni,ni->n", allowed, allowed))  # crude |h| order for speed
     partners = allowed[order]
-    todo = cand_idx
-    for start in range(0, len(partners), 64):
-        if len(todo) == 0:
-            break
-        p = partners[start : start + 64]
-        rest = hkl[todo][:, None, :] - p[None, :, :]  # (n_todo, n_p, 3)
-        k = key(rest)
-        pos = np.searchsorted(allowed_keys, k)
-        pos = np.clip(pos, 0, len(allowed_keys) - 1)
-        hit = (allowed_keys[pos] == k).any(axis=1)
-        result[todo[hit]] = True
-        todo = todo[~hit]
+    cand_idx = cand_idx[_in_lattice(hkl[cand_idx], _lattice_basis(partners))]
+    for chunk in range(0, len(cand_idx), _DD_CANDIDATE_CHUNK):
+        todo = cand_idx[chunk : chunk + _DD_CANDIDATE_CHUNK]
+        for start in range(0, len(partners), 64):
+            if len(todo) == 0:
+                break
+            p = partners[start : start + 64]
+            rest = hkl[todo][:, None, :] - p[None, :, :]  # (n_todo, n_p, 3)
+            k = key(rest)
+            pos = np.searchsorted(allowed_keys, k)
+            pos = np.clip(pos, 0, len(allowed_keys) - 1)
+            hit = (allowed_keys[pos] == k).any(axis=1)
+            result[todo[hit]] = True
+            todo = todo[~hit]
     return result
+
+
+def _lattice_basis(vectors: np.ndarray) -> list:
+    """Echelon basis of the integer lattice the integer 3-vectors generate.
+
+    Slot c holds the basis row whose first non-zero entry (positive) is in column c, or None.
+    Rows are combined by unimodular steps (extended Euclid), so the lattice is exactly theirs.
+    The first vectors are inserted, then every vector is tested and the ones outside are
+    inserted until none is (each insertion makes the lattice strictly finer, so this ends).
+    """
+    basis: list = [None, None, None]
+    pending = vectors[:64]
+    while len(pending):
+        for v in pending:
+            _insert_lattice_vector(basis, [int(x) for x in v])
+        pending = vectors[~_in_lattice(vectors, basis)][:64]
+    return basis
+
+
+def _insert_lattice_vector(basis: list, v: list[int]) -> None:
+    for c in range(3):
+        if v[c] == 0:
+            continue
+        row = basis[c]
+        if row is None:
+            basis[c] = v if v[c] > 0 else [-x for x in v]
+            return
+        g, x, y = _extended_gcd(row[c], v[c])  # x·row[c] + y·v[c] = g > 0
+        a, b = row[c] // g, v[c] // g
+        basis[c] = [x * r + y * w for r, w in zip(row, v)]
+        v = [b * r - a * w for r, w in zip(row, v)]  # column c is now 0; det [[x, y], [b, -a]] = -1
+
+
+def _extended_gcd(a: int, b: int) -> tuple[int, int, int]:
+    """(g, x, y) with x·a + y·b = g = gcd(a, b) > 0, for a > 0."""
+    x0, y0, x1, y1 = 1, 0, 0, 1
+    while b:
+        q, a, b = a // b, b, a % b
+        x0, x1 = x1, x0 - q * x1
+        y0, y1 = y1, y0 - q * y1
+    return (a, x0, y0) if a > 0 else (-a, -x0, -y0)
+
+
+def _in_lattice(vectors: np.ndarray, basis: list) -> np.ndarray:
+    """Whether each integer 3-vector is an integer combination of the echelon basis rows."""
+    v = np.array(vectors, dtype=np.int64)
+    inside = np.ones(len(v), dtype=bool)
+    for c, row in enumerate(basis):
+        if row is None:
+            inside &= v[:, c] == 0
+            continue
+        inside &= v[:, c] % row[c] == 0
+        v -= np.outer(v[:, c] // row[c], np.asarray(row, dtype=np.int64))
+    return inside & ~v.any(axis=1)
 
 
 def hkl_label(hkl, hexagonal: bool) -> str:
