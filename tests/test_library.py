@@ -13,11 +13,12 @@ import numpy as np
 import pytest
 
 from cifgen import cif_text, write_cif
-from conftest import REFERENCE_PHASES
-from ringid.library import structure
+from conftest import REFERENCE_PHASES, ROOT
+from ringid.core.errors import RingidError
+from ringid.library import store, structure
 from ringid.library.cif import read_crystal
 from ringid.library.store import INDEX_COLUMNS, RING_COLUMNS, build_library, build_phase, read_phase_rings
-from ringid.library.structure import ring_list
+from ringid.library.structure import DEFAULT_MAX_REFLECTIONS, enumerate_hkl, estimated_reflections, ring_list
 
 # ----------------------------------------------------------------- pyFAI calibrant tables
 
@@ -380,7 +381,71 @@ def test_build_library_refuses_missing_folder(tmp_path):
         build_library(tmp_path / "nope", tmp_path / "lib")
 
 
-# ----------------------------------------------------------------- hidden centring
+# ----------------------------------------------------------------- large cells, hidden centring, failures
+
+
+def _p1_cif(cell, atoms=(("Au1", "Au", 0.1, 0.2, 0.3, 1, 0.005),)):
+    return cif_text(formula="Au", cell=cell, symmetry="_space_group_name_H-M_alt 'P 1'\n", atoms=atoms)
+
+
+@pytest.mark.parametrize("cell", [(4.0782, 4.0782, 4.0782, 90, 90, 90), (5.15, 5.21, 5.31, 90, 99.2, 90),
+                                  (7.1, 8.3, 9.7, 83, 97, 104), (3.25, 3.25, 5.21, 90, 90, 120)])
+def test_reflection_estimate_matches_the_enumeration(cell):
+    # reciprocal lattice points in the sphere |g| ≤ 1/d_min: (4π/3)/d_min³ over the reciprocal
+    # cell volume 1/V; the lattice-point count differs from it by a surface term only
+    n = len(enumerate_hkl(cell, 0.3)[1])
+    assert estimated_reflections(cell, 0.3) == pytest.approx(n, rel=0.02)
+
+
+def test_large_cell_is_refused_before_any_enumeration(tmp_path, monkeypatch):
+    path = write_cif(tmp_path, "huge", _p1_cif((120, 120, 120, 90, 90, 90)))
+
+    def enumerate_nothing(*args):
+        raise AssertionError("the enumeration must not start")
+
+    monkeypatch.setattr(structure, "enumerate_hkl", enumerate_nothing)
+    expected = 4 * math.pi / 3 * 120**3 / 0.5**3  # (4π/3)·V/d_min³, V = a³
+    with pytest.raises(RingidError) as err:
+        ring_list(read_crystal(path))
+    assert str(err.value).startswith(f"{path}: cell volume 1,728,000 Å³ would have ~{expected:,.0f} reflections "
+                                     f"to d_min = 0.5 Å, more than library.max_reflections = 1,000,000;")
+    record = build_phase(path, tmp_path / "lib")
+    assert record["status"] == "failed" and f"~{expected:,.0f} reflections" in record["error"]
+    assert (tmp_path / "lib" / "rings" / "huge.csv").read_text().startswith("d_angstrom,")
+
+
+def test_large_cell_cli_gives_one_line_and_the_bound_is_an_option(tmp_path):
+    huge = write_cif(tmp_path, "huge", _p1_cif((120, 120, 120, 90, 90, 90)))
+    cmd = [sys.executable, "-m", "ringid.cli", "library", "phase", str(huge), "-o", str(tmp_path / "lib")]
+    res = subprocess.run(cmd, capture_output=True, text=True, timeout=60)
+    assert res.returncode == 0 and "Traceback" not in res.stderr
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"ringid: warning: {huge}: cell volume 1,728,000 Å³ would have ~")
+    assert lines[0].endswith("(recorded as failed)")
+    # Au (a = 4.0782 Å) has ~(4π/3)·a³/0.5³ = 2,273 reflections to 0.5 Å: refused at 2,000, built at 3,000
+    cifs = tmp_path / "cifs"
+    cifs.mkdir()
+    (cifs / "Au.cif").write_bytes((REFERENCE_PHASES / "Au.cif").read_bytes())
+    for bound, status in (("2000", "failed"), ("3000", "ok")):
+        lib = tmp_path / f"lib{bound}"
+        subprocess.run([sys.executable, "-m", "ringid.cli", "library", "build", str(cifs), "-o", str(lib),
+                        "--max-reflections", bound, "--quiet"], capture_output=True, text=True, timeout=120)
+        assert json.loads((lib / "phases" / "Au.json").read_text())["status"] == status
+
+
+@pytest.mark.parametrize("exc, reason", [
+    (MemoryError(), "out of memory while computing the phase"),
+    (ValueError("first line\nsecond line"), "unexpected ValueError while computing the phase: first line second line"),
+])
+def test_any_exception_of_a_phase_is_its_failed_record(tmp_path, monkeypatch, exc, reason):
+    def fail(*args, **kwargs):
+        raise exc
+
+    monkeypatch.setattr(store, "ring_list", fail)
+    record = build_phase(REFERENCE_PHASES / "Au.cif", tmp_path / "lib")
+    assert record["status"] == "failed" and record["error"].startswith(reason) and "\n" not in record["error"]
+    assert json.loads((tmp_path / "lib" / "phases" / "Au.json").read_text())["error"] == record["error"]
+    assert (tmp_path / "lib" / "reflections" / "Au.csv").read_text().startswith("h,k,l,")
 
 
 def test_hidden_centring_in_p1_gives_the_centred_ring_list():
@@ -413,3 +478,39 @@ def test_lattice_of_allowed_reflections_has_the_index_of_its_minors():
         assert structure._in_lattice(gens, basis).all()
         assert basis[0][0] * basis[1][1] * basis[2][2] == math.gcd(*minors)
         checked += 1
+
+
+def test_config_and_cli_share_the_reflection_bound():
+    import yaml
+
+    config = yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8"))
+    schema = yaml.safe_load((ROOT / "config" / "config.schema.yaml").read_text(encoding="utf-8"))
+    assert config["library"]["max_reflections"] == DEFAULT_MAX_REFLECTIONS
+    assert schema["properties"]["library"]["properties"]["max_reflections"]["default"] == DEFAULT_MAX_REFLECTIONS
+    rule = (ROOT / "ringid" / "workflow" / "rules" / "library.smk").read_text(encoding="utf-8")
+    assert 'max_refl=config["library"]["max_reflections"]' in rule and "--max-reflections {params.max_refl}" in rule
+
+
+@pytest.mark.slow
+def test_largest_allowed_phase_fits_the_declared_cheap_job_memory(tmp_path):
+    """Peak RSS of `ringid library phase` on a triclinic P1 cell just inside max_reflections stays
+    below resources.cheap_mem_mb (a ring per Friedel pair: the most rings per reflection)."""
+    import yaml
+
+    declared_mb = yaml.safe_load((ROOT / "config" / "config.yaml").read_text(encoding="utf-8"))["resources"][
+        "cheap_mem_mb"
+    ]
+    shape = (1.0, 1.07, 1.13, 83, 97, 104)
+    volume = estimated_reflections(shape, 1.0) / (4 * math.pi / 3)  # of the unit-scaled cell
+    scale = (0.98 * DEFAULT_MAX_REFLECTIONS * 0.5**3 / (4 * math.pi / 3) / volume) ** (1 / 3)
+    cell = tuple(x * scale for x in shape[:3]) + shape[3:]
+    path = write_cif(tmp_path, "big", _p1_cif(cell))
+    probe = ("import resource, subprocess, sys; "
+             "r = subprocess.run(sys.argv[1:]); "
+             "print(r.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)")
+    cmd = [sys.executable, "-c", probe, sys.executable, "-m", "ringid.cli", "library", "phase", str(path),
+           "-o", str(tmp_path / "lib")]
+    rc, peak_kb = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout.split()
+    record = json.loads((tmp_path / "lib" / "phases" / "big.json").read_text())
+    assert rc == "0" and record["status"] == "ok" and record["n_reflections"] > 0.9 * DEFAULT_MAX_REFLECTIONS
+    assert int(peak_kb) / 1024 < declared_mb

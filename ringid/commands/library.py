@@ -16,6 +16,8 @@ import sys
 
 D_MIN_HELP = "smallest d-spacing to list, in Å (default 0.5)"
 TOL_HELP = "relative d difference below which reflections share a ring (default 1e-4)"
+MAX_REFL_HELP = ("refuse a phase whose estimated reflection count to d_min, (4π/3)·V/d_min³, exceeds N "
+                 "(default {:,}; memory grows by about 200 bytes per reflection)")
 
 
 def add_parser(subparsers, name: str, help_text: str) -> None:
@@ -48,8 +50,22 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
 
 
 def _add_physics(p: argparse.ArgumentParser) -> None:
+    from ringid.library.structure import DEFAULT_MAX_REFLECTIONS
+
     p.add_argument("--d-min-angstrom", type=float, default=0.5, metavar="D", help=D_MIN_HELP)
     p.add_argument("--merge-tolerance", type=float, default=1e-4, metavar="REL", help=TOL_HELP)
+    p.add_argument("--max-reflections", type=_positive_int, default=DEFAULT_MAX_REFLECTIONS, metavar="N",
+                   help=MAX_REFL_HELP.format(DEFAULT_MAX_REFLECTIONS))
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1: {text!r}")
+    return value
 
 
 def run_build(args) -> int:
@@ -62,7 +78,8 @@ def run_build(args) -> int:
             print(f"[{i}/{n}] {rec['phase']}: {state}", file=sys.stderr)
 
     records = build_library(args.cif_dir, args.output, d_min_angstrom=args.d_min_angstrom,
-                            merge_tolerance=args.merge_tolerance, progress=progress)
+                            merge_tolerance=args.merge_tolerance, max_reflections=args.max_reflections,
+                            progress=progress)
     failed = [r for r in records if r["status"] != "ok"]
     for r in failed:
         print(f"ringid: warning: {r['cif_path']}: {r['error']}", file=sys.stderr)
@@ -75,7 +92,8 @@ def run_build(args) -> int:
 def run_phase(args) -> int:
     from ringid.library.store import build_phase
 
-    rec = build_phase(args.cif, args.output, d_min_angstrom=args.d_min_angstrom, merge_tolerance=args.merge_tolerance)
+    rec = build_phase(args.cif, args.output, d_min_angstrom=args.d_min_angstrom, merge_tolerance=args.merge_tolerance,
+                      max_reflections=args.max_reflections)
     if rec["status"] != "ok":
         print(f"ringid: warning: {rec['cif_path']}: {rec['error']} (recorded as failed)", file=sys.stderr)
     return 0

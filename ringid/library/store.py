@@ -21,6 +21,7 @@ from ringid.core.errors import RingidError
 from ringid.core.model import PhaseRings
 from ringid.library.structure import (
     DEFAULT_D_MIN_ANGSTROM,
+    DEFAULT_MAX_REFLECTIONS,
     DEFAULT_MERGE_TOLERANCE,
     SCATTERING_TABLE,
     ring_list,
@@ -46,12 +47,16 @@ def phase_paths(library_dir: str | os.PathLike, phase: str) -> dict[str, Path]:
 
 def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
                 d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM,
-                merge_tolerance: float = DEFAULT_MERGE_TOLERANCE) -> dict:
+                merge_tolerance: float = DEFAULT_MERGE_TOLERANCE,
+                max_reflections: int = DEFAULT_MAX_REFLECTIONS) -> dict:
     """Compute one phase from its CIF and write its three files; return its record.
 
     A CIF that cannot be used is a result: the record says ``status: failed`` with the
     one-line reason, and the rings/reflections files are written with headers only, so
     that a workflow job that made them still succeeds and the index lists the failure.
+    That holds for any exception of the computation, running out of memory included (its
+    reason then names the exception); a phase whose estimated reflection count exceeds
+    ``max_reflections`` is refused before the enumeration starts.
     """
     from ringid.library import cif as cifmod
 
@@ -71,13 +76,15 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
     }
     try:
         crystal = cifmod.read_crystal(cif_path)
-        rings, refl, ring_of = ring_list(crystal, d_min_angstrom, merge_tolerance)
+        rings, refl, ring_of = ring_list(crystal, d_min_angstrom, merge_tolerance, max_reflections)
     except RingidError as exc:
-        record = dict(base, status="failed", error=exc.problem)
-        write_csv(paths["rings"], RING_COLUMNS, [])
-        write_csv(paths["reflections"], ["h", "k", "l", "d_angstrom", "f_squared", "ring"], [])
-        write_json(paths["record"], record)
-        return record
+        return _failed(paths, base, exc.problem)
+    except MemoryError:
+        return _failed(paths, base, "out of memory while computing the phase (lower library.max_reflections "
+                                    "or raise d_min)")
+    except Exception as exc:  # a phase that cannot be computed is a failed record, not a crash
+        return _failed(paths, base, f"unexpected {type(exc).__name__} while computing the phase: "
+                                    f"{str(exc).strip() or 'no message'}")
 
     a, b, c, al, be, ga = crystal.cell
     record = dict(
@@ -116,6 +123,15 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
             for x, di, fi, ri in zip(hkl, d, f2, rid)
         ),
     )
+    write_json(paths["record"], record)
+    return record
+
+
+def _failed(paths: dict[str, Path], base: dict, problem: str) -> dict:
+    """Write a failed phase's record (one-line reason) and header-only rings/reflections files."""
+    record = dict(base, status="failed", error=" ".join(problem.split()))
+    write_csv(paths["rings"], RING_COLUMNS, [])
+    write_csv(paths["reflections"], ["h", "k", "l", "d_angstrom", "f_squared", "ring"], [])
     write_json(paths["record"], record)
     return record
 
@@ -241,7 +257,8 @@ def write_index(library_dir: str | os.PathLike, phases: list[str] | None = None)
 
 def build_library(cif_dir: str | os.PathLike, library_dir: str | os.PathLike, *,
                   d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM,
-                  merge_tolerance: float = DEFAULT_MERGE_TOLERANCE, progress=None) -> list[dict]:
+                  merge_tolerance: float = DEFAULT_MERGE_TOLERANCE,
+                  max_reflections: int = DEFAULT_MAX_REFLECTIONS, progress=None) -> list[dict]:
     """Build every ``*.cif`` in a folder and write the index; return the phase records."""
     cif_dir = Path(cif_dir)
     if not cif_dir.is_dir():
@@ -251,7 +268,8 @@ def build_library(cif_dir: str | os.PathLike, library_dir: str | os.PathLike, *,
         raise RingidError(cif_dir, "no *.cif files in this folder")
     records = []
     for i, path in enumerate(cifs):
-        records.append(build_phase(path, library_dir, d_min_angstrom=d_min_angstrom, merge_tolerance=merge_tolerance))
+        records.append(build_phase(path, library_dir, d_min_angstrom=d_min_angstrom, merge_tolerance=merge_tolerance,
+                                   max_reflections=max_reflections))
         if progress:
             progress(i + 1, len(cifs), records[-1])
     write_index(library_dir, [r["phase"] for r in records])

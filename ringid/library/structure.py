@@ -37,6 +37,13 @@ from ringid.core.model import PhaseRings
 DEFAULT_D_MIN_ANGSTROM = 0.5
 DEFAULT_MERGE_TOLERANCE = 1e-4  # relative difference in d below which reflections share a ring
 
+#: Most reflections (the full sphere d ≥ d_min, Friedel mates included, as estimated by
+#: estimated_reflections) a phase may have; the config key library.max_reflections. Measured
+#: (benchmarks/bench_library_memory.py): building a phase of about 1.0 million reflections peaks
+#: at 174-206 MB (a 33 MB interpreter + 140-180 bytes per reflection), under half the 500 MB
+#: declared for a cheap workflow job.
+DEFAULT_MAX_REFLECTIONS = 1_000_000
+
 #: Reflections with |F|² below this fraction of the strongest are kinematically forbidden.
 FORBIDDEN_F2_FRACTION = 1e-10
 
@@ -81,6 +88,30 @@ def reciprocal_metric(cell) -> np.ndarray:
     ca, cb, cg = (math.cos(math.radians(x)) for x in (al, be, ga))
     g = np.array([[a * a, a * b * cg, a * c * cb], [a * b * cg, b * b, b * c * ca], [a * c * cb, b * c * ca, c * c]])
     return np.linalg.inv(g)
+
+
+def estimated_reflections(cell, d_min_angstrom: float) -> float:
+    """Reflections with d ≥ d_min (full sphere, Friedel mates included), estimated as (4π/3)·V/d_min³.
+
+    The reciprocal lattice points inside the sphere |g| ≤ 1/d_min: the sphere's volume
+    (4π/3)/d_min³ divided by the reciprocal cell's volume 1/V (V in Å³). Centring absences are
+    not taken off: every index is enumerated before they are.
+    """
+    import gemmi
+
+    return 4.0 * math.pi / 3.0 * gemmi.UnitCell(*cell).volume / d_min_angstrom**3
+
+
+def check_reflection_count(crystal, d_min_angstrom: float, max_reflections: int) -> None:
+    """Refuse, before any enumeration, a phase whose estimated reflection count exceeds max_reflections."""
+    n = estimated_reflections(crystal.cell, d_min_angstrom)
+    if n > max_reflections:
+        raise RingidError(
+            crystal.path,
+            f"cell volume {crystal.volume_angstrom3:,.0f} Å³ would have ~{n:,.0f} reflections to d_min = "
+            f"{d_min_angstrom:g} Å, more than library.max_reflections = {max_reflections:,}; raise d_min, or "
+            "library.max_reflections (--max-reflections) if the memory allows (about 200 bytes per reflection)",
+        )
 
 
 def enumerate_hkl(cell, d_min_angstrom: float) -> tuple[np.ndarray, np.ndarray]:
@@ -138,8 +169,13 @@ def structure_factors(crystal, hkl: np.ndarray, d_angstrom: np.ndarray) -> np.nd
     return F
 
 
-def compute_reflections(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM) -> Reflections:
-    """Every reflection not extinguished by the lattice centring, with its |F|²."""
+def compute_reflections(crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM,
+                        max_reflections: int = DEFAULT_MAX_REFLECTIONS) -> Reflections:
+    """Every reflection not extinguished by the lattice centring, with its |F|².
+
+    Raises RingidError before enumerating when the estimate exceeds max_reflections.
+    """
+    check_reflection_count(crystal, d_min_angstrom, max_reflections)
     hkl, d = enumerate_hkl(crystal.cell, d_min_angstrom)
     keep = ~centring_absent(hkl, crystal.centring_vectors)
     hkl, d = hkl[keep], d[keep]
@@ -264,9 +300,10 @@ def _representative(hkl: np.ndarray, f2: np.ndarray) -> np.ndarray:
 
 
 def ring_list(
-    crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM, merge_tolerance: float = DEFAULT_MERGE_TOLERANCE
+    crystal, d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM, merge_tolerance: float = DEFAULT_MERGE_TOLERANCE,
+    max_reflections: int = DEFAULT_MAX_REFLECTIONS,
 ):
-    """Compute the ring list of a crystal.
+    """Compute the ring list of a crystal (refused up front above max_reflections, see compute_reflections).
 
     Returns
     -------
@@ -276,7 +313,7 @@ def ring_list(
         Ring index of each reflection (−1 for a forbidden reflection that no double
         diffraction can light up).
     """
-    refl = compute_reflections(crystal, d_min_angstrom)
+    refl = compute_reflections(crystal, d_min_angstrom, max_reflections)
     if len(refl.d_angstrom) == 0:
         raise RingidError(crystal.path, f"no reflection with d ≥ {d_min_angstrom} Å")
     f2max = refl.f_squared.max()

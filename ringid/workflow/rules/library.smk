@@ -14,6 +14,7 @@ rule library_phase:
     params:
         d_min=config["library"]["d_min_angstrom"],
         tol=config["library"]["merge_tolerance"],
+        max_refl=config["library"]["max_reflections"],
     threads: 1
     resources:
         mem_mb=mem("cheap"),
@@ -23,6 +24,7 @@ rule library_phase:
         " -o {LIB:q}"
         " --d-min-angstrom {params.d_min}"
         " --merge-tolerance {params.tol}"
+        " --max-reflections {params.max_refl}"
         " > {log:q} 2>&1"
 
 
