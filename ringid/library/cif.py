@@ -411,8 +411,8 @@ def _fractional_coordinates(path, block, small, warnings) -> list[np.ndarray]:
     """Fractional coordinates of every atom-site row, with ``.`` read as 0 where that is defensible.
 
     In CIF a lone ``?`` marks a value as unknown and a lone ``.`` as inapplicable or as the
-    dictionary's default (CIF 1.1 syntax specification, International Tables for
-    Crystallography Vol. G (2005) Sect. 2.2.7; from memory). A coordinate is never
+    dictionary's default (the CIF 1.1 syntax specification, IUCr 2003; International Tables for
+    Crystallography Vol. G (2005), Chap. 2.2; from memory). A coordinate is never
     inapplicable and the core dictionary gives ``_atom_site_fract_x``/``_y``/``_z`` no default
     (from memory), so ``.`` has no value of its own there; some exports write it for a zero
     coordinate. It is read as 0 only when the file writes no zero coordinate as a number (so
@@ -606,9 +606,10 @@ def _short_hm(symbol: str) -> str:
     no rotation part ('I 41/a -3 2/d' → 'I a -3 d'). A symbol without '/' is returned as it is.
     """
     head, colon, setting = symbol.partition(":")
-    lattice, *positions = head.split()
-    if not positions or "/" not in head:
+    parts = head.split()
+    if len(parts) < 2 or "/" not in head:
         return symbol
+    lattice, *positions = parts
     cubic = len(positions) > 1 and positions[1] in ("3", "-3")
     monoclinic = sum(p != "1" for p in positions) == 1
     principal = not cubic and positions[0].lstrip("-")[:1] in ("3", "4", "6")
