@@ -312,10 +312,10 @@ def test_4096_float32_pattern_fits_the_declared_image_job_memory(tmp_path):
 
 @pytest.mark.slow
 def test_a_job_killed_for_memory_fails_its_samples_and_the_report_is_still_written(inputs, tmp_path):
-    """The system killing an image job (SIGKILL, as the out-of-memory killer does) must not stop
-    the run: the job's fallback records its samples as failed with the reason, the other batches
-    go on, and the summary and report are written (exit 0). The kill is simulated by a `ringid`
-    earlier on PATH that kills itself when its batch holds one chosen sample."""
+    """The system killing an image job or a library job (SIGKILL, as the out-of-memory killer does)
+    must not stop the run: the job's fallback records its samples (or its phase) as failed with the
+    reason, the other jobs go on, and the summary and report are written (exit 0). The kills are
+    simulated by a `ringid` earlier on PATH that kills itself for one chosen batch and one CIF."""
     import yaml
 
     base = inputs["base"]
@@ -330,6 +330,9 @@ def test_a_job_killed_for_memory_fails_its_samples_and_the_report_is_still_writt
     shim = tmp_path / "bin"
     shim.mkdir()
     (shim / "ringid").write_text(f"""#!/bin/bash
+if [[ "$1 $2" == "library phase" && "$3" == *NiO.cif && " $* " != *" --after-crash "* ]]; then
+  kill -9 $$
+fi
 if [[ "$1 $2" == "batch measure" && " $* " != *" --after-crash "* ]]; then
   manifest=$(cat)
   if [[ "$manifest" == *{victim}* ]]; then kill -9 $$; fi
@@ -354,4 +357,8 @@ exec "{sys.executable}" -m ringid "$@"
     assert summary["np_CeO2_batch_C"]["status"] == "ok" and summary["np_CeO2_batch_C"]["phases"] == "CeO2"
     assert (work / "results" / "report.html").is_file()
     assert f"failed: {victim}: the job stopped before this item was written" in res.stderr
+    with open(work / "results" / "library" / "index.csv", newline="", encoding="utf-8") as fh:
+        nio = next(r for r in csv.DictReader(fh) if r["phase"] == "NiO")
+    assert nio["status"] == "failed" and "killed by SIGKILL" in nio["error"], nio
+    assert "NiO: the job stopped before this item was written" in res.stderr
     _assert_nothing_half_written(work / "results")

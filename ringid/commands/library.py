@@ -35,6 +35,10 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("cif", metavar="CIF", help="the CIF file; its stem is the phase id")
     p.add_argument("-o", "--output", required=True, metavar="LIB", help="library folder to write into")
     _add_physics(p)
+    p.add_argument("--after-crash", type=int, metavar="STATUS",
+                   help="do no work: record the phase as failed when this job's first run died with shell exit "
+                        "STATUS before writing its record (the workflow's fallback)")
+    p.add_argument("--log", default="", metavar="LOG", help="the job's log, named in that record")
     p.set_defaults(func=run_phase)
 
     p = sub.add_parser("index", help="write LIB/index.csv from the phase records in LIB")
@@ -91,6 +95,16 @@ def run_build(args) -> int:
 
 def run_phase(args) -> int:
     from ringid.library.store import build_phase
+
+    if args.after_crash is not None:
+        from ringid.jobs.batch import crash_reason
+        from ringid.library.store import record_crashed_phase
+
+        rec = record_crashed_phase(args.cif, args.output, crash_reason(args.after_crash, args.log),
+                                   d_min_angstrom=args.d_min_angstrom, merge_tolerance=args.merge_tolerance)
+        if rec is not None:
+            print(f"ringid: warning: {args.cif}: the job died; recorded as failed", file=sys.stderr)
+        return 0
 
     rec = build_phase(args.cif, args.output, d_min_angstrom=args.d_min_angstrom, merge_tolerance=args.merge_tolerance,
                       max_reflections=args.max_reflections)

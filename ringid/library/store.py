@@ -61,19 +61,8 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
     from ringid.library import cif as cifmod
 
     cif_path = Path(cif_path)
-    phase = cif_path.stem
-    paths = phase_paths(library_dir, phase)
-    base = {
-        "phase": phase,
-        "status": "ok",
-        "error": "",
-        "cif_path": str(cif_path),
-        "cif_sha256": cifmod.sha256_file(cif_path) if cif_path.is_file() else "",
-        "d_min_angstrom": d_min_angstrom,
-        "merge_tolerance": merge_tolerance,
-        "scattering_factors": SCATTERING_TABLE,
-        "ringid_version": __version__,
-    }
+    paths = phase_paths(library_dir, cif_path.stem)
+    base = _base_record(cif_path, d_min_angstrom, merge_tolerance)
     try:
         crystal = cifmod.read_crystal(cif_path)
         rings, refl, ring_of = ring_list(crystal, d_min_angstrom, merge_tolerance, max_reflections)
@@ -125,6 +114,35 @@ def build_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, *,
     )
     write_json(paths["record"], record)
     return record
+
+
+def _base_record(cif_path: Path, d_min_angstrom: float, merge_tolerance: float) -> dict:
+    """The fields of a phase record that do not depend on the computation."""
+    from ringid.library import cif as cifmod
+
+    return {
+        "phase": cif_path.stem,
+        "status": "ok",
+        "error": "",
+        "cif_path": str(cif_path),
+        "cif_sha256": cifmod.sha256_file(cif_path) if cif_path.is_file() else "",
+        "d_min_angstrom": d_min_angstrom,
+        "merge_tolerance": merge_tolerance,
+        "scattering_factors": SCATTERING_TABLE,
+        "ringid_version": __version__,
+    }
+
+
+def record_crashed_phase(cif_path: str | os.PathLike, library_dir: str | os.PathLike, reason: str, *,
+                         d_min_angstrom: float = DEFAULT_D_MIN_ANGSTROM,
+                         merge_tolerance: float = DEFAULT_MERGE_TOLERANCE) -> dict | None:
+    """After the job of a phase died (killed, say): its failed record with ``reason``, unless its
+    record was written; returns the record written, or None."""
+    cif_path = Path(cif_path)
+    paths = phase_paths(library_dir, cif_path.stem)
+    if paths["record"].is_file():
+        return None
+    return _failed(paths, _base_record(cif_path, d_min_angstrom, merge_tolerance), reason)
 
 
 def _failed(paths: dict[str, Path], base: dict, problem: str) -> dict:

@@ -1,5 +1,6 @@
 # INPUTS: phases_dir/{phase}.cif   OUTPUTS: library/{phases,rings,reflections}/{phase}.*, library/index.csv
-# One job per CIF, so a new or changed CIF recomputes only its phase.
+# One job per CIF, so a new or changed CIF recomputes only its phase. A job that dies (killed for
+# memory, say) is followed by its own command with --after-crash, which records the phase as failed.
 
 
 rule library_phase:
@@ -26,6 +27,8 @@ rule library_phase:
         " --merge-tolerance {params.tol}"
         " --max-reflections {params.max_refl}"
         " > {log:q} 2>&1"
+        " || {{ status=$?; ringid library phase {input.cif:q} -o {LIB:q} --d-min-angstrom {params.d_min}"
+        " --merge-tolerance {params.tol} --after-crash $status --log {log:q} >> {log:q} 2>&1; }}"
 
 
 rule library_index:
