@@ -12,17 +12,22 @@ from ringid.core.errors import RingidError
 from ringid.identify.score import Identification, IdentifySettings, ObservedRings
 
 
+def _read_table(path: Path, what: str) -> list[dict]:
+    """The rows of a CSV table (a byte-order mark is dropped); unreadable raises RingidError."""
+    import csv
+
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            return list(csv.DictReader(fh))
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise RingidError(path, f"cannot read {what} ({getattr(exc, 'strerror', None) or exc})") from None
+
+
 def read_observed_rings(path: str | os.PathLike) -> tuple[ObservedRings, list[dict]]:
     """Read a rings CSV (columns g_per_nm, g_sigma_per_nm, fwhm_per_nm, area, optional kind);
     halos (kind = halo) are left out of the returned rings but kept in the rows."""
-    import csv
-
     path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            rows = list(csv.DictReader(fh))
-    except OSError as exc:
-        raise RingidError(path, f"cannot read rings table ({exc.strerror or exc})") from None
+    rows = _read_table(path, "rings table")
     need = ("g_per_nm", "g_sigma_per_nm", "fwhm_per_nm", "area")
     if rows and any(k not in rows[0] for k in need):
         raise RingidError(path, f"rings table lacks column(s) {', '.join(k for k in need if k not in rows[0])}")
@@ -78,14 +83,8 @@ def d_list_rings(d_angstrom, *, d_sigma_angstrom=None, intensity=None, accuracy:
 def read_d_list(path: str | os.PathLike, accuracy: float = 0.01) -> tuple[ObservedRings, list[dict], bool]:
     """A CSV of d-spacings (column ``d_angstrom``; optional ``d_sigma_angstrom``, ``intensity``),
     as :func:`d_list_rings`."""
-    import csv
-
     path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as fh:
-            rows = list(csv.DictReader(fh))
-    except OSError as exc:
-        raise RingidError(path, f"cannot read d-spacing list ({exc.strerror or exc})") from None
+    rows = _read_table(path, "d-spacing list")
     if not rows or "d_angstrom" not in rows[0]:
         raise RingidError(path, "a d-spacing list needs a column d_angstrom (optional d_sigma_angstrom, intensity)")
     unknown = [c for c in rows[0] if c and c not in D_LIST_COLUMNS]

@@ -172,6 +172,15 @@ def _check_size(path, shape, itemsize, max_pixels, max_bytes):
         raise RingidError(path, f"image of {n_frame} pixels exceeds the limit of {max_pixels} pixels")
 
 
+def _frame_or_all(path, arr, source, frame: int | None) -> np.ndarray:
+    """The chosen frame of a frame stack (noted in ``source``), or every pixel of ``arr`` read into memory."""
+    if source.kind == "frames" and frame is not None:
+        source.notes.append(_check_frame(path, frame, arr.shape[0]))
+        source.kind, source.frame_taken = "image", True
+        return np.array(arr[frame])
+    return np.array(arr)
+
+
 def _check_frame(path, frame: int, n_frames: int) -> str:
     """The note for taking ``frame`` of ``n_frames``; raises when the stack has no such frame."""
     if not 0 <= frame < n_frames:
@@ -194,12 +203,7 @@ def _read_npy(path, frame, max_pixels, max_bytes):
         elif arr.shape[0] < min(arr.shape[1:]):
             source.kind = "frames"
     try:
-        if source.kind == "frames" and frame is not None:
-            source.notes.append(_check_frame(path, frame, arr.shape[0]))
-            source.kind, source.frame_taken = "image", True
-            data = np.array(arr[frame])
-        else:
-            data = np.array(arr)
+        data = _frame_or_all(path, arr, source, frame)
     except RingidError:
         raise
     except Exception as exc:
@@ -318,15 +322,10 @@ def _read_mrc(path, frame, max_pixels, max_bytes):
             with mrcfile.mmap(path, mode="r", permissive=False) as mrc:
                 stack = mrc.data
                 source = _Source({2: "image", 3: "frames"}.get(stack.ndim, "other"))
-                if source.kind == "frames" and frame is not None:
-                    source.notes.append(_check_frame(path, frame, stack.shape[0]))
-                    source.kind, source.frame_taken = "image", True
-                    data = np.array(stack[frame])
-                else:
-                    data = np.array(stack)
-                    if source.kind == "frames" and ispg != 0:
-                        source.notes.append(f"the MRC header marks a volume (ISPG {ispg}): its "
-                                            f"{stack.shape[0]} sections read as frames")
+                data = _frame_or_all(path, stack, source, frame)
+                if source.kind == "frames" and ispg != 0:
+                    source.notes.append(f"the MRC header marks a volume (ISPG {ispg}): its "
+                                        f"{stack.shape[0]} sections read as frames")
     except RingidError:
         raise
     except Exception as exc:  # mrcfile raises ValueError for a broken header, numpy for short data

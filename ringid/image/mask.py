@@ -93,12 +93,8 @@ def _neighbour_extremes_rows(block: np.ndarray) -> tuple[np.ndarray, np.ndarray]
     return hi, lo
 
 
-def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: int = 200_000, seed: int = 0) -> float:
-    """Variance per unit signal (1 for Poisson counts) from differences of horizontal neighbours.
-
-    For counts with variance g·μ, (x_i − x_{i+1})² has mean 2gμ; the median ratio of
-    (x_i − x_{i+1})² to (x_i + x_{i+1}) is 0.455·g for a χ²₁ variable (a robust estimate).
-    """
+def _neighbour_pairs(data: np.ndarray, valid: np.ndarray | None, n_sample: int, seed: int):
+    """Values (x, y) of up to ``n_sample`` random pairs of horizontal neighbours, both valid (float64)."""
     a = data[:, :-1].reshape(-1)
     b = data[:, 1:].reshape(-1)
     rng = np.random.default_rng(seed)
@@ -107,6 +103,16 @@ def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: i
     if valid is not None:
         keep = valid[:, :-1].reshape(-1)[idx] & valid[:, 1:].reshape(-1)[idx]
         x, y = x[keep], y[keep]
+    return x, y
+
+
+def noise_gain(data: np.ndarray, valid: np.ndarray | None = None, *, n_sample: int = 200_000, seed: int = 0) -> float:
+    """Variance per unit signal (1 for Poisson counts) from differences of horizontal neighbours.
+
+    For counts with variance g·μ, (x_i − x_{i+1})² has mean 2gμ; the median ratio of
+    (x_i − x_{i+1})² to (x_i + x_{i+1}) is 0.455·g for a χ²₁ variable (a robust estimate).
+    """
+    x, y = _neighbour_pairs(data, valid, n_sample, seed)
     level = x + y
     keep = level > 2.0
     if keep.sum() < 100:
@@ -129,14 +135,7 @@ def low_level_variance(data: np.ndarray, valid: np.ndarray | None = None, *, n_s
     """
     if not data.min() < 0:
         return 0.0
-    a = data[:, :-1].reshape(-1)
-    b = data[:, 1:].reshape(-1)
-    rng = np.random.default_rng(seed)
-    idx = rng.integers(0, a.size, min(n_sample, a.size))
-    x, y = a[idx].astype(np.float64), b[idx].astype(np.float64)
-    if valid is not None:
-        keep = valid[:, :-1].reshape(-1)[idx] & valid[:, 1:].reshape(-1)[idx]
-        x, y = x[keep], y[keep]
+    x, y = _neighbour_pairs(data, valid, n_sample, seed)
     low = x + y <= 2.0
     if low.sum() < 100:
         return 0.0
