@@ -196,10 +196,19 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
 
         try:
             calibration_png(Path(out_path).with_suffix(".png"), title=f"{row.calibration}: residuals",
-                            residuals=record.rings)
-        except (OSError, ValueError):
+                            residuals=record.rings, profile=_standard_profile(row, record, image_options or {}))
+        except (OSError, ValueError, RingidError):
             pass
     return record
+
+
+def _standard_profile(row, record: CalibrationRecord, image_options: dict):
+    """The standard film's azimuthal profile at the fitted geometry (for the calibration figure)."""
+    from ringid.image.integrate import integrate_profile
+    from ringid.image.stage import load_and_mask
+
+    img, masks = load_and_mask(row.image, **image_options)
+    return integrate_profile(img.data, masks.mask, record.geometry, with_cake=False)
 
 
 def _calibrate_row(row, library_dir, image_options: dict) -> CalibrationRecord:

@@ -173,6 +173,30 @@ def _draw_phase_ticks(ax, references, g: np.ndarray, ymin: float, ymax: float) -
         ax.plot([], [], color=colour, lw=1.5, label=phase)
 
 
+def _draw_standard_profile(ax, profile, residuals) -> None:
+    """The standard film's azimuthal mean (log scale) with a tick at each assigned ring's calculated g."""
+    g = np.asarray(profile.g_per_nm, float)
+    y = np.asarray(profile.intensity, float)
+    ax.plot(g, y, color="#222", lw=0.7)
+    finite = y[np.isfinite(y) & (y > 0)]
+    if finite.size:
+        from matplotlib.ticker import LogFormatter, NullLocator
+
+        ax.set_yscale("log")
+        ax.yaxis.set_minor_locator(NullLocator())
+        ax.yaxis.set_major_formatter(LogFormatter(labelOnlyBase=True))
+        ax.set_ylim(np.percentile(finite, 0.5) * 0.8, finite.max() * 1.6)
+    gc = np.array([r.g_calc_per_nm for r in residuals], float)
+    ax.vlines(gc, 0.0, 0.12, transform=ax.get_xaxis_transform(), colors="#c0392b", lw=1.0)
+    for gi, r in zip(gc, residuals):
+        ax.text(gi, 0.97, str(r.hkl).replace(" ", ""), transform=ax.get_xaxis_transform(), rotation=90, fontsize=6,
+                color="#c0392b", ha="center", va="top")
+    ax.set_xlim(g.min(), g.max())
+    ax.set_ylabel("azimuthal mean", fontsize=8)
+    ax.tick_params(labelsize=7)
+    ax.set_title("standard film: profile at the fitted geometry, assigned rings", fontsize=8)
+
+
 def _save_small_png(fig, path) -> None:
     """Save as a palette PNG (≤ 128 colours): a noisy thumbnail then costs tens, not hundreds, of kB."""
     from PIL import Image
@@ -188,11 +212,16 @@ def _save_small_png(fig, path) -> None:
         img.save(tmp, format="PNG", optimize=True)
 
 
-def calibration_png(path: str | os.PathLike, *, title: str, residuals) -> None:
-    """Residual plot of a calibration: (g_obs − g_calc)/g_calc in % against g, labelled by hkl."""
+def calibration_png(path: str | os.PathLike, *, title: str, residuals, profile=None) -> None:
+    """The standard's profile with its fitted rings (when ``profile``, a Profile at the fitted
+    geometry, is given), and the residuals (g_obs − g_calc)/g_calc in % against g, labelled by hkl."""
 
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(6.0, 2.6), dpi=100)
+    if profile is not None and len(profile.g_per_nm):
+        fig, (ax_p, ax) = plt.subplots(2, 1, figsize=(7.0, 4.6), dpi=100, height_ratios=(1.4, 1.0))
+        _draw_standard_profile(ax_p, profile, residuals)
+    else:
+        fig, ax = plt.subplots(figsize=(6.0, 2.6), dpi=100)
     g = np.array([r.g_calc_per_nm for r in residuals], float)
     rel = np.array([100.0 * (r.g_obs_per_nm - r.g_calc_per_nm) / r.g_calc_per_nm for r in residuals], float)
     ax.axhline(0, color="#888", lw=0.8)
