@@ -11,7 +11,8 @@ from __future__ import annotations
 def add_parser(subparsers, name: str, help_text: str) -> None:
     p = subparsers.add_parser(name, help=help_text, description=help_text)
     p.add_argument("calibration", metavar="ID", help="calibration id in the sheet")
-    p.add_argument("--sheet", required=True, metavar="CSV", help="calibration sheet")
+    p.add_argument("--calibrations-sheet", "--sheet", dest="sheet", required=True, metavar="CSV",
+                   help="calibration sheet (the same option name as ringid report's)")
     p.add_argument("--library", metavar="LIB", help="phase library folder (for standard films)")
     p.add_argument("-o", "--output", required=True, metavar="CAL.json", help="calibration record to write")
     p.add_argument("--saturation-level", type=float, metavar="COUNTS",

@@ -21,10 +21,10 @@ rule calibration:
         runtime=runtime("image"),
     shell:
         "ringid calibration {wildcards.calibration:q}"
-        " --sheet {input.sheet:q}"
+        " --calibrations-sheet {input.sheet:q}"
         " --library {LIB:q}"
         " -o {output:q}"
         " {params.image}"
         " > {log:q} 2>&1"
-        " || {{ status=$?; ringid calibration {wildcards.calibration:q} --sheet {input.sheet:q} -o {output:q}"
+        " || {{ status=$?; ringid calibration {wildcards.calibration:q} --calibrations-sheet {input.sheet:q} -o {output:q}"
         " --after-crash $status --log {log:q} >> {log:q} 2>&1; }}"
