@@ -2,7 +2,7 @@
 #   snakemake --cores 2                          (the synthetic demo: run `ringid demo` first)
 #   snakemake --cores 8 --configfile my.yaml     (your sheets and CIFs)
 # Stages (ringid/workflow/rules/): library -> calibration -> batches (image work, then identification,
-# batch_size samples per job) -> report.
+# batch_size samples per job) -> series (trends) -> report.
 
 import sys
 import time
@@ -29,6 +29,7 @@ include: "ringid/workflow/rules/common.smk"
 include: "ringid/workflow/rules/library.smk"
 include: "ringid/workflow/rules/calibration.smk"
 include: "ringid/workflow/rules/batch.smk"
+include: "ringid/workflow/rules/series.smk"
 include: "ringid/workflow/rules/report.smk"
 
 

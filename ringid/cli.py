@@ -27,6 +27,7 @@ COMMANDS = [
     ("measure", "[workflow job] image work of one sample: pattern -> profile -> rings"),
     ("identify", "score a rings table (or a measured sample folder) against the phase library"),
     ("batch", "[workflow job] several samples in one process: image work, identification"),
+    ("series", "trends across a series of samples (annealing, time, position): table and figure"),
     ("report", "summary.csv and report.html of a results folder"),
     ("analyze", "one pattern through every stage in one process (no workflow)"),
 ]

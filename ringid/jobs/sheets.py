@@ -40,6 +40,11 @@ class SampleRow:
     calibration: str
     voltage_kv: float = math.nan
     note: str = ""
+    values: tuple[tuple[str, str], ...] = ()  # the config's extra columns (series variables), as text
+
+    def value(self, column: str) -> str:
+        """The text of an extra column ("" when empty or not in the sheet)."""
+        return dict(self.values).get(column, "")
 
 
 @dataclass(frozen=True)
@@ -215,14 +220,23 @@ def read_calibrations(path: str | os.PathLike, phases_dir: str | os.PathLike | N
 
 
 def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow] | None = None,
-                 problems: Problems | None = None) -> dict[str, SampleRow]:
-    """Read and check the sample sheet (collects problems when ``problems`` is given)."""
+                 problems: Problems | None = None, extra_columns: dict[str, str] | None = None,
+                 check_columns: bool = True) -> dict[str, SampleRow]:
+    """Read and check the sample sheet (collects problems when ``problems`` is given).
+
+    ``extra_columns``: further known columns (``{name: "number" | "text"}``, e.g. the series
+    variables of the config); a number column may be empty, else it must be a finite number.
+    ``check_columns=False`` leaves other columns alone (for jobs that only need the sample ids of a
+    sheet the workflow checked when it started).
+    """
+    extra = dict(extra_columns or {})
     own, problems, path, read = _start(path, problems, "the sample sheet")
     out: dict[str, SampleRow] = {}
     if read is None:
         return out
     header, rows = read
-    _check_columns(path, header, SAMPLE_COLUMNS, problems)
+    if check_columns:
+        _check_columns(path, header, SAMPLE_COLUMNS + tuple(extra), problems)
     missing = [c for c in ("sample", "image", "calibration") if c not in header]
     if missing:
         problems.add(path, f"missing column(s) {', '.join(missing)}")
@@ -251,16 +265,37 @@ def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow
             cv = calibrations[cal].voltage_kv
             if math.isfinite(cv) and abs(cv - volt) > 1e-6 * cv:
                 problems.add(f"{path}:{n}", f"voltage_kv {volt:g} differs from its calibration {cal!r} ({cv:g} kV)")
-        out[sid] = SampleRow(sid, image, cal, volt, r.get("note", ""))
+        values = []
+        for column, kind in extra.items():
+            text = r.get(column, "")
+            if text and kind == "number":
+                try:
+                    if not math.isfinite(float(text)):
+                        raise ValueError
+                except ValueError:
+                    problems.add(f"{path}:{n}", f"{column} {text!r} is not a number")
+            values.append((column, text))
+        out[sid] = SampleRow(sid, image, cal, volt, r.get("note", ""), tuple(values))
     if own:
         problems.raise_if_any("the sample sheet")
     return out
 
 
-def read_sheets(samples_csv, calibrations_csv, phases_dir):
-    """Read both sheets; raise one SheetError listing every problem of both."""
+def series_columns(series) -> dict[str, str]:
+    """The sample-sheet columns the config's series declare: ``{variable: "number", group_by: "text"}``."""
+    out: dict[str, str] = {}
+    for s in series or ():
+        out[s["variable"]] = "number"
+        if s.get("group_by"):
+            out[s["group_by"]] = "text"
+    return out
+
+
+def read_sheets(samples_csv, calibrations_csv, phases_dir, extra_columns: dict[str, str] | None = None):
+    """Read both sheets; raise one SheetError listing every problem of both (``extra_columns``:
+    as for :func:`read_samples`)."""
     problems = Problems()
     cals = read_calibrations(calibrations_csv, phases_dir, problems)
-    samples = read_samples(samples_csv, cals, problems)
+    samples = read_samples(samples_csv, cals, problems, extra_columns)
     problems.raise_if_any("the sheets")
     return samples, cals

@@ -237,3 +237,78 @@ def calibration_png(path: str | os.PathLike, *, title: str, residuals, profile=N
     fig.tight_layout()
     _save_small_png(fig, path)
     plt.close(fig)
+
+
+def series_png(path: str | os.PathLike, *, title: str, variable: str, columns: list[str], rows: list[dict]) -> None:
+    """The trends of a series against its variable: the amorphous share and the crystalline phases'
+    shares (stacked bars), the crystallite size with σ on a log axis (lower limits as upward triangles), and each
+    phase's lattice parameter a as its change from the phase's first value (%, with σ). Failed or
+    unidentified samples are marked as crosses under the first panel (gaps, not dropped)."""
+    plt = _pyplot()
+    fig, (ax_f, ax_s, ax_a) = plt.subplots(3, 1, figsize=(7.0, 6.4), dpi=100, sharex=True)
+    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
+    phases = [c[len("fraction_"):] for c in columns if c.startswith("fraction_")]
+    groups = sorted({r["group"] for r in rows})
+    xs = np.array([r[variable] for r in rows], float)
+    span = float(np.ptp(xs)) if xs.size > 1 else 1.0
+    steps = np.diff(np.unique(xs))
+    width = 0.6 * (float(steps.min()) if steps.size else span or 1.0) / max(len(groups), 1)
+
+    def num(r, key):
+        v = r.get(key)
+        return float(v) if isinstance(v, (int, float)) and v is not None and math.isfinite(v) else math.nan
+
+    for gi, group in enumerate(groups):
+        members = [r for r in rows if r["group"] == group]
+        x = np.array([r[variable] for r in members], float) + (gi - (len(groups) - 1) / 2) * width
+        ok = np.array([r["status"] == "ok" and bool(r.get("phases") or r.get("crystallinity") == "amorphous")
+                       for r in members])
+        amorphous = np.array([num(r, "amorphous_share") for r in members])
+        amorphous = np.where(np.isfinite(amorphous), amorphous, 0.0)
+        bottom = np.where(ok, amorphous, 0.0)
+        ax_f.bar(x[ok], amorphous[ok], width, color="#bbbbbb", label="amorphous" if gi == 0 else None)
+        for n, phase in enumerate(phases):
+            share = np.array([num(r, f"fraction_{phase}") for r in members])
+            share = np.where(np.isfinite(share) & ok, share * (1 - amorphous), 0.0)
+            ax_f.bar(x, share, width, bottom=bottom, color=PHASE_COLOURS[n % len(PHASE_COLOURS)],
+                     label=phase if gi == 0 else None)
+            bottom = bottom + share
+        if (~ok).any():
+            ax_f.plot(x[~ok], np.full((~ok).sum(), -0.06), "x", color="#a61b1b", ms=6, clip_on=False,
+                      label="failed or unidentified" if gi == 0 else None)
+        marker = "os^Dv"[gi % 5]
+        size = np.array([num(r, "crystallite_size_nm") for r in members])
+        sig = np.array([num(r, "crystallite_size_sigma_nm") for r in members])
+        lower = np.array([num(r, "crystallite_size_lower_limit_nm") for r in members])
+        ax_s.errorbar(x, size, yerr=np.where(np.isfinite(sig), sig, 0.0), fmt=marker + "-", color="#2471a3", ms=4,
+                      capsize=2, lw=0.8, label=group or None)
+        if np.isfinite(lower).any():
+            ax_s.plot(x, lower, "^", color="#2471a3", mfc="none", ms=6, label="lower limit" if gi == 0 else None)
+        for n, phase in enumerate(phases):
+            a = np.array([num(r, f"a_{phase}_angstrom") for r in members])
+            sa = np.array([num(r, f"a_{phase}_sigma_angstrom") for r in members])
+            if not np.isfinite(a).any():
+                continue
+            a0 = a[np.isfinite(a)][0]
+            ax_a.errorbar(x, 100 * (a / a0 - 1), yerr=np.where(np.isfinite(sa), 100 * sa / a0, 0.0),
+                          fmt=marker + "-", color=PHASE_COLOURS[n % len(PHASE_COLOURS)], ms=4, capsize=2, lw=0.8,
+                          label=f"{phase} (a₀ = {a0:.4f} Å)" if gi == 0 else None)
+    ax_f.set_ylim(0, 1.02)
+    ax_f.set_ylabel("share of\nscattering", fontsize=8)
+    ax_f.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False)
+    if any(ax_s.get_lines()):  # sizes span decades (nanocrystals to the instrument's limit): a log axis
+        ax_s.set_yscale("log")
+    ax_s.set_ylabel("crystallite\nsize (nm)", fontsize=8)
+    if ax_s.get_legend_handles_labels()[0]:
+        ax_s.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False)
+    ax_a.set_ylabel("Δa/a₀ (%)", fontsize=8)
+    ax_a.axhline(0, color="#888", lw=0.6)
+    handles, _ = ax_a.get_legend_handles_labels()
+    if handles:
+        ax_a.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False)
+    ax_a.set_xlabel(variable, fontsize=8)
+    for ax in (ax_f, ax_s, ax_a):
+        ax.tick_params(labelsize=7)
+    fig.tight_layout()
+    _save_small_png(fig, path)
+    plt.close(fig)

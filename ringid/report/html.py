@@ -241,7 +241,7 @@ def _identification_notes(ident: dict) -> list[str]:
 
 def write_report(
     results_dir: str | os.PathLike, samples: list[str], calibrations: list[str], *, title: str = "ringid report",
-    figures: str = "auto",
+    figures: str = "auto", series: list[str] = (),
 ) -> Path:
     """Write ``summary.csv`` and ``report.html`` under ``results_dir``; return the report path.
 
@@ -314,6 +314,18 @@ def write_report(
         fig = results / "calibrations" / f"{cal}.png"
         if fig.exists():
             parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration residuals of {cal}", link_from))
+    if series:
+        parts.append('<h2 id="series-section">Series</h2>')
+        for name in series:
+            fig = results / "series" / f"{name}.png"
+            table = _read_csv(results / "series" / f"{name}.csv")
+            gaps = [r["sample"] for r in table if r.get("status") != "ok" or not (r.get("phases") or
+                                                                               r.get("crystallinity") == "amorphous")]
+            parts.append(f"<h3>{_e(name)}</h3><p class=\"meta\">{len(table)} samples (table: "
+                         f'<a href="series/{_e(name)}.csv">series/{_e(name)}.csv</a>)'
+                         + (f"; shown as gaps (failed or unidentified): {_e(', '.join(gaps))}" if gaps else "")
+                         + "</p>" + (_img(fig, f"series {name}", link_from) if table else
+                                     '<p class="meta">no sample gives a value of its variable</p>'))
     parts.append("<h2>Samples</h2>")
     for r in rows:
         parts.append(_sample_section(r, results / "samples" / r["sample"], link_from))

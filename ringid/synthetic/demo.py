@@ -51,6 +51,11 @@ AMORPHOUS_TIO2 = {
     "counts": 25.0,
 }
 
+# the film's annealing series (the config's series "annealing"); as deposited at room temperature
+ANNEALING_TEMPERATURE_C = {"film_as_deposited": 25.0, "film_anneal_300C": 300.0, "film_anneal_400C": 400.0,
+                           "film_anneal_500C": 500.0, "film_anneal_600C": 600.0, "film_anneal_700C": 700.0,
+                           "film_anneal_800C": 800.0}
+
 SCENARIO = (
     DemoPattern("film_as_deposited", {}, "TiO2 film as deposited (amorphous)", halo=AMORPHOUS_TIO2),
     DemoPattern(
@@ -196,9 +201,11 @@ def write_demo(out_dir: str | os.PathLike = "demo", *, shape=(2048, 2048), seed:
         w.writerow([CALIBRATION.sample, f"images/{CALIBRATION.sample}.tif", "Au", f"{VOLTAGE_KV:g}"])
     with open(out / "samples.csv", "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["sample", "image", "calibration", "voltage_kv", "note"])
+        w.writerow(["sample", "image", "calibration", "voltage_kv", "note", "temperature_c"])
         for p in patterns:
-            w.writerow([p.sample, f"images/{p.sample}.tif", CALIBRATION.sample, f"{VOLTAGE_KV:g}", p.note])
+            temperature = ANNEALING_TEMPERATURE_C.get(p.sample)
+            w.writerow([p.sample, f"images/{p.sample}.tif", CALIBRATION.sample, f"{VOLTAGE_KV:g}", p.note,
+                        "" if temperature is None else f"{temperature:g}"])
     (out / "README.txt").write_text(
         "Synthetic demo data made by `ringid demo` (ringid's own simulator). Not measured data.\n" + (__doc__ or ""),
         encoding="utf-8")

@@ -5,7 +5,7 @@ import os
 import sys
 from pathlib import Path
 
-from ringid.jobs.sheets import SheetError, read_sheets
+from ringid.jobs.sheets import SheetError, read_sheets, series_columns
 
 RESULTS = config["results_dir"].rstrip("/")
 LIB = f"{RESULTS}/library"
@@ -16,7 +16,8 @@ if not Path(PHASES_DIR).is_dir():
 if not Path(config["samples"]).exists() and config["samples"] == "demo/samples.csv":
     sys.exit("ringid: error: demo/samples.csv: the demo data are not there yet; run `ringid demo` first")
 try:
-    SAMPLES, CALIBRATIONS = read_sheets(config["samples"], config["calibrations"], PHASES_DIR)
+    SAMPLES, CALIBRATIONS = read_sheets(config["samples"], config["calibrations"], PHASES_DIR,
+                                        series_columns(config["series"]))
 except SheetError as exc:
     sys.exit("\n".join(f"ringid: error: {line}" for line in exc.lines))
 

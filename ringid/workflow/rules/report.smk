@@ -10,6 +10,7 @@ rule report:
         index=f"{LIB}/index.csv",
         samples_sheet=config["samples"],
         calibrations_sheet=config["calibrations"],
+        series=[f"{RESULTS}/series/{name}.{ext}" for name in SERIES for ext in ("csv", "png")],
     output:
         summary=f"{RESULTS}/summary.csv",
         report=f"{RESULTS}/report.html",
@@ -17,6 +18,7 @@ rule report:
         f"{RESULTS}/logs/report.log",
     params:
         figures=config["report"]["figures"],
+        series=" ".join(SERIES),
     threads: 1
     resources:
         mem_mb=mem("cheap"),
@@ -26,4 +28,5 @@ rule report:
         " --samples-sheet {input.samples_sheet:q}"
         " --calibrations-sheet {input.calibrations_sheet:q}"
         " --figures {params.figures}"
+        " --series {params.series}"
         " > {log:q} 2>&1"
