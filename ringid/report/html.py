@@ -108,7 +108,11 @@ def _sample_section(row: dict, sample_dir: Path, link_from: Path | None = None) 
     if row["alternatives"]:
         meta.append(f"cannot be told apart from: {_e(row['alternatives'].replace(';', ', '))}")
     if _size_text(row):
-        meta.append(f"crystallite size: {_e(_size_text(row))} nm")
+        spread = ""
+        if row["crystallite_size_nm"] and row["crystallite_size_sigma_nm"]:
+            spread = (f" ± {row['crystallite_size_sigma_nm']} (statistical) ± {row['crystallite_size_systematic_nm']}"
+                      " (systematic, the line-shape model's measured bias)")
+        meta.append(f"crystallite size: {_e(_size_text(row) + spread)} nm")
     if row["ring_character"]:
         kinds = row["ring_character"].split(";")
         meta.append("rings: " + _e(", ".join(kinds[:-1]) + " and " + kinds[-1] if len(kinds) > 1 else kinds[0]))

@@ -21,13 +21,14 @@ from pathlib import Path
 from ringid.core.atomic import format_cell, write_csv
 from ringid.core.errors import RingidError
 from ringid.core.records import SampleRecord, read_sample_record
+from ringid.sample.size import SIZE_SYSTEMATIC_FRACTION
 
 SUMMARY_COLUMNS = [
     "sample", "status", "crystallinity", "phases", "alternatives", "confidence", "center_x_px", "center_y_px",
     "ellipticity", "crystallite_size_nm", "n_rings", "unexplained_rings", "flags", "error",
     "calibration", "fractions_rough", "crystallite_size_sigma_nm", "ring_character", "note",
     "unexplained_d_angstrom", "unexplained_intensity_share", "false_identification_probability",
-    "crystallite_size_lower_limit_nm",
+    "crystallite_size_lower_limit_nm", "crystallite_size_systematic_nm",
 ]
 
 SCREENING_NOTE = ("Phase identification is a screening result: ring positions fix a lattice only as well as the "
@@ -109,6 +110,9 @@ def summary_row(sample: str, sample_dir: Path) -> dict:
         ),
         # the rings are as sharp as the instrument allows: the size is at least this (crystallite_size_nm empty)
         "crystallite_size_lower_limit_nm": _num(rec.crystallite_size_lower_limit_nm, ".3g"),
+        # the line-shape model's measured bias (SIZE_SYSTEMATIC_FRACTION), beside the statistical σ
+        "crystallite_size_systematic_nm": _num(rec.crystallite_size_nm * SIZE_SYSTEMATIC_FRACTION
+                                               if rec.crystallite_size_nm else None, ".2g"),
     }
 
 

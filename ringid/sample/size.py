@@ -44,6 +44,10 @@ K_SPHERE_DIAMETER = 4.0 / 3.0  # Langford & Wilson 1978: sphere diameter, integr
 # not from a source: line-broadening sizes are not trusted where the broadening is below about a
 # tenth of the instrument's)
 RESOLUTION_FRACTION = 0.1
+# The systematic part of a size, as a fraction of it: the line-shape model's bias measured on
+# profiles of spheres of known size (+6 … +12 %, benchmarks/bench_ring_accuracy.py, synthetic);
+# dense patterns of broad rings do worse (up to +28 % at FWHM 0.6 1/nm, docs/rings.md). Not in σ_D.
+SIZE_SYSTEMATIC_FRACTION = 0.10
 PHI_LORENTZ = 2.0 / math.pi  # FWHM/β of a Lorentzian
 PHI_GAUSS = 2.0 * math.sqrt(math.log(2.0) / math.pi)  # FWHM/β of a Gaussian
 
