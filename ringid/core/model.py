@@ -20,7 +20,9 @@ class Geometry:
     ``ellipticity`` is ε = 1 − b/a of the area-preserving elliptical distortion: a ring of
     true radius R is drawn with semi-axes a = R/√(1−ε), b = R·√(1−ε), the major axis at
     ``ellipse_angle_deg`` from +x towards +y. ``camera_constant_A_px`` is K = λL/p (Å·px),
-    so d = K / R.
+    so d = K / R. ``radial_distortion_k3_per_px2`` is the third-order radial distortion k₃ (1/px²):
+    a ring of true radius R lies at ρ = R·(1 + k₃R²) in the ellipse-corrected frame
+    (:mod:`ringid.image.radial`); 0 for none.
     """
 
     center_x_px: float
@@ -30,6 +32,7 @@ class Geometry:
     camera_constant_A_px: float = math.nan
     voltage_kv: float = math.nan
     center_sigma_px: float = math.nan
+    radial_distortion_k3_per_px2: float = 0.0
 
 
 @dataclass(frozen=True)

@@ -2,20 +2,24 @@
 
 The elliptical lens distortion is an affine map about the pattern centre
 (:mod:`ringid.image.ellipse`); pyFAI's detector tilt is not one (docs/design.md), so the
-distortion is expressed as corrected pixel positions instead. Two equivalent
-routes are provided:
+distortion is expressed as corrected pixel positions instead. The third-order radial
+distortion (:mod:`ringid.image.radial`, k₃ = ``Geometry.radial_distortion_k3_per_px2``) acts on
+the ellipse-corrected radius ρ alone, so it is undone per pixel on the same array,
+R = f⁻¹(ρ), before the histogram: every bin then holds the pixels of one interval of true g,
+on the uniform g grid the profile stage expects. With k₃ = 0 that step is skipped. Two
+equivalent routes are provided:
 
 ``method="radial"`` (default)
     The undistorted radius |A⁻¹(p − c)| of every pixel centre is computed once
-    (float32, two broadcasts) and converted to g = 10·R/K (1/nm, K in Å·px, so that
-    d = K/R exactly); pyFAI's own histogram engines
+    (float32, two broadcasts), corrected for k₃ (a short series in k₃ρ², in place) and
+    converted to g = 10·R/K (1/nm, K in Å·px, so that d = K/R exactly); pyFAI's own histogram engines
     (``pyFAI.ext.histogram.histogram1d_engine`` / ``histogram2d_engine``) then
     integrate on that radial array with Poisson error propagation
     (``ErrorModel.POISSON``). No PONI, no wavelength: g is the radial unit itself.
     Measured on a simulated ε = 4 % ring: the integrated ring sits at its true
     radius to better than 0.01 px (tests/test_integrate.py).
 ``method="corners"``
-    A ``pyFAI.detectors.Detector`` whose pixel corners are affine-corrected
+    A ``pyFAI.detectors.Detector`` whose pixel corners are affine- and k₃-corrected
     (``set_pixel_corners``, array (ny, nx, 4, 3) of z, y, x in metres, built
     vectorised in float32 and cached per geometry), integrated by an
     ``AzimuthalIntegrator`` in the radial unit ``r_mm`` with the PONI at the
@@ -36,6 +40,7 @@ import math
 import numpy as np
 
 from ringid.image.ellipse import undistorted_offsets, undistortion_matrix
+from ringid.image.radial import scaled_true_radius_from_squared, undistort_radius
 from ringid.core.model import Geometry, Profile
 
 PIXEL_SIZE_M = 1.0e-4  # nominal pixel pitch handed to pyFAI; cancels out of g
@@ -48,13 +53,18 @@ def default_g_step_per_nm(camera_constant_A_px: float, px_per_bin: float = 0.5) 
 
 
 def g_array(shape, geometry: Geometry) -> np.ndarray:
-    """g = 10·R/K (1/nm) of every pixel centre, R its undistorted radius in px (float32)."""
+    """g = 10·R/K (1/nm) of every pixel centre, R its undistorted radius in px (float32): the
+    ellipse-corrected radius ρ, and R = f⁻¹(ρ) when the geometry has a radial distortion k₃."""
     _check_geometry(geometry)
     ux, uy = undistorted_offsets(shape, geometry.center_x_px, geometry.center_y_px, geometry.ellipticity,
                                  geometry.ellipse_angle_deg)
     np.multiply(ux, ux, out=ux)
     np.multiply(uy, uy, out=uy)
     ux += uy
+    k3 = geometry.radial_distortion_k3_per_px2
+    if k3:
+        return scaled_true_radius_from_squared(ux, k3, rho_max_px=_max_rho_of_image(shape, geometry),
+                                               scale=10.0 / geometry.camera_constant_A_px, work=uy)
     np.sqrt(ux, out=ux)
     ux *= np.float32(10.0 / geometry.camera_constant_A_px)
     return ux
@@ -85,7 +95,7 @@ def integrate_profile(data: np.ndarray, mask: np.ndarray | None, geometry: Geome
     mask : bool array or None
         True where pixels are excluded.
     geometry : Geometry
-        Centre, ε, θ and camera constant K (Å·px).
+        Centre, ε, θ, radial distortion k₃ and camera constant K (Å·px).
     g_step_per_nm : float or None
         Bin width in g (1/nm); default half a pixel of radius.
     g_min_per_nm, g_max_per_nm : float
@@ -158,30 +168,37 @@ def _finish(position, intensity, sigma, count, cake, azimuth_deg) -> Profile:
                    cake=None if cake is None else cake[:, sl], azimuth_deg=azimuth_deg)
 
 
-def _max_g_of_image(shape, geometry: Geometry) -> float:
+def _max_rho_of_image(shape, geometry: Geometry) -> float:
+    """Largest ellipse-corrected radius ρ (px) of a pixel centre: at a corner (|A⁻¹(p − c)| is convex)."""
     ny, nx = shape
     inv = undistortion_matrix(geometry.ellipticity, geometry.ellipse_angle_deg)
     corners = np.array([[0, 0], [nx - 1, 0], [0, ny - 1], [nx - 1, ny - 1]], float)
     d = corners - [geometry.center_x_px, geometry.center_y_px]
-    r = np.hypot(*(inv @ d.T))
-    return float(10.0 * r.max() / geometry.camera_constant_A_px)
+    return float(np.hypot(*(inv @ d.T)).max())
+
+
+def _max_g_of_image(shape, geometry: Geometry) -> float:
+    r = undistort_radius(_max_rho_of_image(shape, geometry), geometry.radial_distortion_k3_per_px2)
+    return float(10.0 * r / geometry.camera_constant_A_px)
 
 
 @functools.lru_cache(maxsize=2)
-def _cached_detector(shape, cx, cy, eps, ang):
+def _cached_detector(shape, cx, cy, eps, ang, k3):
     from pyFAI.detectors import Detector
 
     det = Detector(pixel1=PIXEL_SIZE_M, pixel2=PIXEL_SIZE_M, max_shape=shape)
-    det.set_pixel_corners(affine_corrected_corners(shape, cx, cy, eps, ang))
+    det.set_pixel_corners(affine_corrected_corners(shape, cx, cy, eps, ang, radial_distortion_k3_per_px2=k3))
     return det
 
 
 def affine_corrected_corners(shape, center_x_px: float, center_y_px: float, ellipticity: float,
-                             ellipse_angle_deg: float, pixel_size_m: float = PIXEL_SIZE_M) -> np.ndarray:
+                             ellipse_angle_deg: float, pixel_size_m: float = PIXEL_SIZE_M, *,
+                             radial_distortion_k3_per_px2: float = 0.0) -> np.ndarray:
     """Pixel-corner array (ny, nx, 4, 3) in metres (z, y, x) with the lens distortion undone.
 
     Corner j of pixel [i, k] (pyFAI order: (i, k), (i+1, k), (i+1, k+1), (i, k+1) in
-    corner coordinates) is moved to c + A⁻¹(p − c). Built from one (ny+1, nx+1) grid
+    corner coordinates) is moved to c + A⁻¹(p − c), scaled about c by f⁻¹(ρ)/ρ when there is a
+    radial distortion k₃ (ρ = |A⁻¹(p − c)|). Built from one (ny+1, nx+1) grid
     in float32, so 2048² takes a fraction of a second.
     """
     ny, nx = shape
@@ -191,8 +208,17 @@ def affine_corrected_corners(shape, center_x_px: float, center_y_px: float, elli
     xs = np.arange(nx + 1, dtype=np.float32) - cxp
     ys = np.arange(ny + 1, dtype=np.float32) - cyp
     scale = np.float32(pixel_size_m)
-    gx = (inv[0, 0] * xs[None, :] + inv[0, 1] * ys[:, None] + cxp) * scale
-    gy = (inv[1, 0] * xs[None, :] + inv[1, 1] * ys[:, None] + cyp) * scale
+    ux = inv[0, 0] * xs[None, :] + inv[0, 1] * ys[:, None]
+    uy = inv[1, 0] * xs[None, :] + inv[1, 1] * ys[:, None]
+    if radial_distortion_k3_per_px2:
+        rho = np.hypot(ux, uy)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            factor = undistort_radius(rho, radial_distortion_k3_per_px2) / rho
+        factor[rho == 0] = 1.0
+        ux *= factor
+        uy *= factor
+    gx = (ux + cxp) * scale
+    gy = (uy + cyp) * scale
     out = np.zeros((ny, nx, 4, 3), np.float32)
     for j, (di, dk) in enumerate(((0, 0), (1, 0), (1, 1), (0, 1))):
         out[:, :, j, 1] = gy[di : di + ny, dk : dk + nx]
@@ -204,7 +230,7 @@ def _integrate_corners(raw, mask, geometry, g_lo, g_hi, n_g, n_azimuth, with_cak
     from pyFAI.integrator.azimuthal import AzimuthalIntegrator
 
     det = _cached_detector(raw.shape, geometry.center_x_px, geometry.center_y_px, geometry.ellipticity,
-                           geometry.ellipse_angle_deg)
+                           geometry.ellipse_angle_deg, geometry.radial_distortion_k3_per_px2)
     ai = AzimuthalIntegrator(dist=DISTANCE_M, poni1=(geometry.center_y_px + 0.5) * PIXEL_SIZE_M,
                              poni2=(geometry.center_x_px + 0.5) * PIXEL_SIZE_M, detector=det)
     mm_per_g = geometry.camera_constant_A_px / 10.0 * PIXEL_SIZE_M * 1e3  # r_mm of one 1/nm

@@ -49,7 +49,10 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
         The pattern (TIFF, MRC or .npy).
     calibration : Geometry
         The ``geometry`` of a :class:`ringid.core.records.CalibrationRecord` (standard, known or nominal):
-        K (Å·px, required), ε, θ, voltage; its centre is only a fallback.
+        K (Å·px, required), ε, θ, radial distortion k₃, voltage; its centre is only a fallback. The
+        sample keeps the calibration's k₃ (lens distortion does not change between patterns); its
+        centre is refined on the ellipse-corrected radius ρ, which k₃ leaves circular
+        (:mod:`ringid.image.radial`), and the profile is integrated on the true radius f⁻¹(ρ).
     fit_ellipse : bool
         Fit the sample's own ε and θ instead of inheriting them (e.g. when the
         calibration is a nominal constant with no distortion measured).
@@ -79,7 +82,8 @@ def process_image(path, calibration: Geometry, *, user_mask_path=None, frame: in
     g, fit, flags, notes = _centre(img, masks, calibration, fit_ellipse, path)
     geometry = Geometry(center_x_px=g.center_x_px, center_y_px=g.center_y_px, ellipticity=g.ellipticity,
                         ellipse_angle_deg=g.ellipse_angle_deg, camera_constant_A_px=calibration.camera_constant_A_px,
-                        voltage_kv=calibration.voltage_kv, center_sigma_px=g.center_sigma_px)
+                        voltage_kv=calibration.voltage_kv, center_sigma_px=g.center_sigma_px,
+                        radial_distortion_k3_per_px2=calibration.radial_distortion_k3_per_px2)
     t["center"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     profile = integrate_profile(img.data, masks.mask, geometry, g_step_per_nm=g_step_per_nm, n_azimuth=n_azimuth,
