@@ -2,7 +2,8 @@
 
 Steps: load and mask the image; fit the centre and ellipse on its rings
 (:func:`ringid.image.center.refine_geometry`); assign the observed rings to the
-standard's reflections; fit K, centre, ε and θ jointly by least squares on the
+standard's reflections; fit K, centre, ε, θ and the third-order radial distortion k₃
+(:mod:`ringid.image.radial`, kept when significant) jointly by least squares on the
 ring positions measured in azimuth sectors; integrate the profile at the result
 and fit each assigned ring's width to give the instrumental FWHM as a line in g.
 
@@ -31,6 +32,7 @@ from ringid.core.errors import RingidError
 from ringid.core.model import Geometry, InstrumentProfile
 from ringid.core.records import CalibrationRecord, CalibrationRing, write_calibration_record
 from ringid.core.units import electron_wavelength_angstrom
+from ringid.image.radial import distorted_radius, undistort_radius
 
 MATCH_TOLERANCE = 0.005  # relative radius tolerance for a ring to count as assigned
 NOMINAL_WINDOW = 0.15  # a nominal K is trusted to ±15 %
@@ -53,9 +55,10 @@ class RingAssignment:
 class Calibration:
     """Result of a calibration (its file is :meth:`record`, a :class:`ringid.core.records.CalibrationRecord`).
 
-    geometry: K (Å·px), centre, ε, θ, voltage. Sigmas are standard uncertainties from
-    the least-squares covariance scaled by the residual scatter. ring_* arrays are per
-    assigned ring. FWHM line: fwhm_per_nm = fwhm_c0_per_nm + fwhm_c1 · g_per_nm.
+    geometry: K (Å·px), centre, ε, θ, radial distortion k₃ (0 when not significant), voltage.
+    Sigmas are standard uncertainties from the least-squares covariance scaled by the residual
+    scatter (σ(k₃) is given even when k₃ is recorded as 0: see :func:`fit_camera_constant`).
+    ring_* arrays are per assigned ring. FWHM line: fwhm_per_nm = fwhm_c0_per_nm + fwhm_c1 · g_per_nm.
     """
 
     geometry: Geometry
@@ -74,6 +77,7 @@ class Calibration:
     standard_source: str = ""
     image: str = ""
     instrument_eta: float = 0.5  # pseudo-Voigt mixing η of the standard's rings (median)
+    radial_distortion_k3_sigma_per_px2: float = math.nan
     flags: tuple[str, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
 
@@ -107,6 +111,8 @@ class Calibration:
             center_x_px=g.center_x_px, center_y_px=g.center_y_px, center_sigma_px=g.center_sigma_px,
             ellipticity=g.ellipticity, ellipticity_sigma=self.ellipticity_sigma,
             ellipse_angle_deg=g.ellipse_angle_deg, ellipse_angle_sigma_deg=self.ellipse_angle_sigma_deg,
+            radial_distortion_k3_per_px2=g.radial_distortion_k3_per_px2,
+            radial_distortion_k3_sigma_per_px2=_finite_or_none(self.radial_distortion_k3_sigma_per_px2),
             wavelength_angstrom=wavelength, standard=self.standard, standard_source=self.standard_source,
             image=self.image, nominal_camera_constant_A_px=nominal_camera_constant_A_px,
             camera_length_mm=g.camera_constant_A_px * pixel_size_um * 1e-3 / wavelength if pixel_size_um else None,
@@ -115,6 +121,10 @@ class Calibration:
             unassigned_rings_g_per_nm=tuple(float(x) for x in self.unassigned_g_per_nm),
             flags=tuple(self.flags), notes=tuple(self.notes),
         )
+
+
+def _finite_or_none(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
 
 
 def assign_rings(radius_px, standard_d_angstrom, standard_intensity=None, *,
@@ -177,8 +187,8 @@ def assign_rings(radius_px, standard_d_angstrom, standard_intensity=None, *,
 
 
 def fit_camera_constant(points, ring_standard_g_per_A, geometry: Geometry, camera_constant_A_px: float, *,
-                        fit_ellipse: bool = True):
-    """Joint least squares of K, centre, ε and θ on sector points of assigned rings.
+                        fit_ellipse: bool = True, fit_radial: bool = True):
+    """Joint least squares of K, centre, ε, θ and the radial distortion k₃ on sector points of assigned rings.
 
     Parameters
     ----------
@@ -188,6 +198,8 @@ def fit_camera_constant(points, ring_standard_g_per_A, geometry: Geometry, camer
         NaN for rings not assigned, whose points are left out).
     geometry : Geometry
         Starting centre and ellipse.
+    fit_radial : bool
+        Also fit the third-order radial distortion k₃ (kept only when significant, see Notes).
 
     Returns
     -------
@@ -195,65 +207,159 @@ def fit_camera_constant(points, ring_standard_g_per_A, geometry: Geometry, camer
 
     Notes
     -----
-    Residual per point: (|A⁻¹(p − c)| − K·g_j)/σ with ε and θ parametrised as
-    (ε cos 2θ, ε sin 2θ) so that small ε has no angle singularity. Two passes:
-    points beyond 4 robust standard deviations are dropped after the first.
-    """
-    from scipy.optimize import least_squares
+    Residual per point: (|A⁻¹(p − c)| − f(K·g_j))/σ, f(R) = R(1 + k₃R²) (:mod:`ringid.image.radial`),
+    with ε and θ parametrised as (ε cos 2θ, ε sin 2θ) so that small ε has no angle singularity, and
+    k₃ as κ = k₃·R_ref², the fractional distortion at R_ref = K₀·max g_j (the outermost assigned ring
+    at the starting K): κ is of order 10⁻³ like ε, not 10⁻⁹ px⁻², and the normal matrix stays well
+    conditioned. Two passes: points beyond 4 robust standard deviations are dropped after the first.
 
+    The fit without k₃ is made first and, with ``fit_radial``, again with k₃ free (its own two
+    passes: an uncorrected pincushion would otherwise drop the outer rings as outliers). k₃ is kept
+    when |k₃| > 3σ(k₃) (RADIAL_SIGNIFICANCE): with no radial distortion an estimate that large
+    arises by chance in 0.3 % of calibrations (normal errors), and a smaller one cannot be told from
+    zero, while applying it would add its own noise to every sample's d-spacings at large g. Below
+    the threshold the fit without k₃ is returned unchanged, with k₃ = 0 and the σ(k₃) of the free fit,
+    which bounds what is left uncorrected: about 3σ(k₃)·R² relative at radius R. σ(k₃) is the larger
+    of the point-level value and the value from the ring means (see :func:`_ring_level_k3_sigma`).
+    """
     x, y = points.pixel_positions()
     g_std = np.asarray(ring_standard_g_per_A, dtype=float)[points.ring_index]
     use = np.isfinite(g_std)
     x, y, g_std, sig = x[use], y[use], g_std[use], points.sigma_px[use]
+    ring = points.ring_index[use]
 
     e0 = geometry.ellipticity
     t0 = math.radians(2 * geometry.ellipse_angle_deg)
     p0 = np.array([camera_constant_A_px, geometry.center_x_px, geometry.center_y_px,
-                   e0 * math.cos(t0), e0 * math.sin(t0)])
+                   e0 * math.cos(t0), e0 * math.sin(t0), 0.0])
+    r_ref = float(camera_constant_A_px * np.max(g_std)) if g_std.size else math.nan
+    fit = _JointFit(x, y, g_std, sig, p0, r_ref, geometry.ellipticity, geometry.ellipse_angle_deg,
+                    fit_ellipse=fit_ellipse)
+    plain = fit.solve(radial=False)
+    sig_k3 = math.nan
+    chosen = plain
+    if fit_radial and np.unique(ring).size >= 3:
+        radial = fit.solve(radial=True)
+        k3, sig_k3_points = radial.k3_per_px2, radial.k3_sigma_per_px2
+        sig_k3 = max(sig_k3_points, _ring_level_k3_sigma(radial, ring, g_std))
+        if math.isfinite(sig_k3) and abs(k3) > RADIAL_SIGNIFICANCE * sig_k3:
+            chosen = radial
+    k, cx, cy, eps, ang = fit.unpack(chosen.p_full)
+    cov = chosen.cov
+    sig_k = math.sqrt(max(cov[0, 0], 0))
+    sig_c = math.sqrt(max(0.5 * (cov[1, 1] + cov[2, 2]), 0))
+    sig_e, sig_a = _ellipse_sigmas(chosen.p_full[3:5], cov[3:5, 3:5], eps) if fit_ellipse else (math.nan, math.nan)
+    geom = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=(ang + 90.0) % 180.0 - 90.0,
+                    camera_constant_A_px=k, voltage_kv=geometry.voltage_kv, center_sigma_px=sig_c,
+                    radial_distortion_k3_per_px2=chosen.k3_per_px2)
+    resid_px = chosen.residual_px
+    sigmas = {"camera_constant": sig_k, "ellipticity": sig_e, "ellipse_angle_deg": sig_a,
+              "radial_distortion_k3": sig_k3}
+    return geom, sigmas, resid_px, chosen.keep
 
-    def unpack(p):
-        eps = math.hypot(p[3], p[4]) if fit_ellipse else geometry.ellipticity
-        ang = 0.5 * math.degrees(math.atan2(p[4], p[3])) if fit_ellipse else geometry.ellipse_angle_deg
+
+RADIAL_SIGNIFICANCE = 3.0  # k₃ is kept when |k₃| exceeds this many standard uncertainties
+
+
+@dataclass(frozen=True)
+class _JointSolution:
+    """One joint fit: full parameter vector (K, cx, cy, ε cos 2θ, ε sin 2θ, κ), covariance of the free
+    parameters in that order (κ last when fitted), kept points, reduced χ², whether κ was free, k₃ and its
+    point-level σ (1/px²), and every point's radial residual and σ (px)."""
+
+    p_full: np.ndarray
+    cov: np.ndarray
+    keep: np.ndarray
+    chi2: float
+    radial: bool
+    k3_per_px2: float
+    k3_sigma_per_px2: float
+    residual_px: np.ndarray
+    sigma_px: np.ndarray
+
+
+class _JointFit:
+    """The least squares of :func:`fit_camera_constant` on sector points at pixel positions (x, y) of rings
+    with standard g (1/Å) ``g_std`` and radial σ ``sig`` (px); ``r_ref`` (px) scales κ = k₃·r_ref²."""
+
+    def __init__(self, x, y, g_std, sig, p0, r_ref, eps_fixed, ang_fixed, *, fit_ellipse: bool):
+        self.x, self.y, self.g_std, self.sig, self.p0 = x, y, g_std, sig, p0
+        self.r_ref, self.eps_fixed, self.ang_fixed, self.fit_ellipse = r_ref, eps_fixed, ang_fixed, fit_ellipse
+
+    def unpack(self, p):
+        eps = math.hypot(p[3], p[4]) if self.fit_ellipse else self.eps_fixed
+        ang = 0.5 * math.degrees(math.atan2(p[4], p[3])) if self.fit_ellipse else self.ang_fixed
         return p[0], p[1], p[2], min(eps, 0.5), ang
 
-    def residual(p, keep):
-        k, cx, cy, eps, ang = unpack(p)
+    def residual(self, p, keep, radial: bool):
+        k, cx, cy, eps, ang = self.unpack(p)
         t = math.radians(ang)
         c, s = math.cos(t), math.sin(t)
         root = math.sqrt(1.0 - eps)
-        dx, dy = x[keep] - cx, y[keep] - cy
+        dx, dy = self.x[keep] - cx, self.y[keep] - cy
         along = c * dx + s * dy
         across = -s * dx + c * dy
         r = np.hypot(along * root, across / root)
-        return (r - k * g_std[keep]) / sig[keep]
+        model = k * self.g_std[keep]
+        if radial:
+            model = model * (1.0 + p[5] * (model / self.r_ref) ** 2)
+        return (r - model) / self.sig[keep]
 
-    keep = np.ones(x.size, bool)
-    n_par = 5 if fit_ellipse else 3
-    for _ in range(2):
-        sol = least_squares(lambda p: residual(np.concatenate([p, p0[n_par:]]), keep), p0[:n_par], method="lm",
-                            x_scale="jac")
-        p_full = np.concatenate([sol.x, p0[n_par:]])
-        res_all = residual(p_full, np.ones(x.size, bool))
-        scale = 1.4826 * np.median(np.abs(res_all[keep]))
-        new_keep = np.abs(res_all) < 4.0 * max(scale, 1e-12)
-        if np.array_equal(new_keep, keep):
-            break
-        keep = new_keep
-    p_full = np.concatenate([sol.x, p0[n_par:]])
-    dof = max(keep.sum() - n_par, 1)
-    chi2 = float(np.sum(sol.fun**2)) / dof
-    jac = sol.jac
-    cov = np.linalg.pinv(jac.T @ jac) * chi2
-    k, cx, cy, eps, ang = unpack(p_full)
-    sig_k = math.sqrt(max(cov[0, 0], 0))
-    sig_c = math.sqrt(max(0.5 * (cov[1, 1] + cov[2, 2]), 0))
-    sig_e, sig_a = _ellipse_sigmas(p_full[3:5], cov[3:5, 3:5], eps) if fit_ellipse else (math.nan, math.nan)
-    geom = Geometry(center_x_px=cx, center_y_px=cy, ellipticity=eps, ellipse_angle_deg=(ang + 90.0) % 180.0 - 90.0,
-                    camera_constant_A_px=k, voltage_kv=geometry.voltage_kv, center_sigma_px=sig_c)
-    resid_px = residual(p_full, np.ones(x.size, bool)) * sig
-    return geom, {"camera_constant": sig_k, "ellipticity": sig_e, "ellipse_angle_deg": sig_a}, resid_px, keep
+    def solve(self, *, radial: bool) -> _JointSolution:
+        from scipy.optimize import least_squares
+
+        free = [0, 1, 2] + ([3, 4] if self.fit_ellipse else []) + ([5] if radial else [])
+        n_par = len(free)
+        x_all = np.ones(self.x.size, bool)
+
+        def full(p):
+            out = self.p0.copy()
+            out[free] = p
+            return out
+
+        keep = x_all
+        for _ in range(2):
+            sol = least_squares(lambda p: self.residual(full(p), keep, radial), self.p0[free], method="lm",
+                                x_scale="jac")
+            res_all = self.residual(full(sol.x), x_all, radial)
+            scale = 1.4826 * np.median(np.abs(res_all[keep]))
+            new_keep = np.abs(res_all) < 4.0 * max(scale, 1e-12)
+            if np.array_equal(new_keep, keep):
+                break
+            keep = new_keep
+        dof = max(keep.sum() - n_par, 1)
+        chi2 = float(np.sum(sol.fun**2)) / dof
+        cov = np.linalg.pinv(sol.jac.T @ sol.jac) * chi2
+        p_full = full(sol.x)
+        k3 = k3_sig = 0.0
+        if radial:
+            k3 = float(p_full[5] / self.r_ref**2)
+            k3_sig = math.sqrt(max(cov[-1, -1], 0)) / self.r_ref**2
+        resid_px = self.residual(p_full, x_all, radial) * self.sig
+        return _JointSolution(p_full=p_full, cov=cov, keep=keep, chi2=chi2, radial=radial, k3_per_px2=k3,
+                              k3_sigma_per_px2=k3_sig, residual_px=resid_px, sigma_px=self.sig)
 
 
+def _ring_level_k3_sigma(solution: _JointSolution, ring, g_std) -> float:
+    """σ(k₃) from the ring means: errors shared by every sector of a ring (a neighbour's tail, curvature
+    of the background under the ring) do not show in the sector scatter that scales the point-level σ,
+    but they move k₃, which is fixed by how the ring radii depend on g. Here the kept sector residuals
+    are averaged per ring and the point-level σ is scaled by the Birge ratio of those means,
+    √(χ²/ν) with ν = rings − 2 (K and k₃ set the radial scale), when it exceeds 1 (Birge, Phys. Rev.
+    40, 207 (1932)). NaN with fewer than three rings."""
+    ring_ids = np.unique(ring)
+    nu = ring_ids.size - 2
+    if nu < 1 or not math.isfinite(solution.k3_sigma_per_px2):
+        return math.nan
+    z = 0.0
+    for j in ring_ids:
+        sel = (ring == j) & solution.keep
+        if not sel.any():
+            return math.nan
+        w = 1.0 / solution.sigma_px[sel] ** 2
+        mean = float(np.sum(w * solution.residual_px[sel]) / np.sum(w))
+        z += mean**2 * float(np.sum(w)) / solution.chi2
+    return solution.k3_sigma_per_px2 * math.sqrt(z / nu)
 def _ellipse_sigmas(pq: np.ndarray, cov_pq: np.ndarray, eps: float) -> tuple[float, float]:
     """σ of ε and of θ (°) from the covariance of (p, q) = (ε cos 2θ, ε sin 2θ): ε = |(p, q)|,
     θ = atan2(q, p)/2, propagated to first order (θ undefined at ε = 0: NaN)."""
@@ -315,8 +421,8 @@ def fit_ring_widths(profile, g_centers_per_nm, fwhm_guess_per_nm):
 def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angstrom, *, voltage_kv: float,
                       standard_intensity=None, standard_hkl=None, nominal_camera_constant_A_px: float | None = None,
                       center_guess: tuple[float, float] | None = None, standard: str = "",
-                      standard_source: str = "", path=None) -> Calibration:
-    """Calibrate K, centre, ε and θ from a masked pattern of a standard.
+                      standard_source: str = "", path=None, fit_radial: bool = True) -> Calibration:
+    """Calibrate K, centre, ε, θ and the radial distortion k₃ from a masked pattern of a standard.
 
     Parameters
     ----------
@@ -330,6 +436,9 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
         Accelerating voltage (kV), recorded.
     nominal_camera_constant_A_px : float or None
         Nominal K (e.g. from camera length and pixel size); trusted to ±15 %. None: search.
+    fit_radial : bool
+        Fit the third-order radial distortion k₃ too (kept only when significant,
+        :func:`fit_camera_constant`); False gives the fit without it.
 
     Raises
     ------
@@ -357,11 +466,13 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
     start = Geometry(center_x_px=gfit.geometry.center_x_px, center_y_px=gfit.geometry.center_y_px,
                      ellipticity=gfit.geometry.ellipticity, ellipse_angle_deg=gfit.geometry.ellipse_angle_deg,
                      voltage_kv=float(voltage_kv))
-    geom, sig, resid_px, keep = fit_camera_constant(gfit.points, g_std, start, assignment.camera_constant_A_px)
+    geom, sig, resid_px, keep = fit_camera_constant(gfit.points, g_std, start, assignment.camera_constant_A_px,
+                                                    fit_radial=fit_radial)
 
     k = geom.camera_constant_A_px
+    k3 = geom.radial_distortion_k3_per_px2
     obs = assignment.observed_index
-    g_obs, g_sig = _observed_ring_g(gfit.points.ring_index, g_std, obs, k, resid_px, keep)
+    g_obs, g_sig = _observed_ring_g(gfit.points.ring_index, g_std, obs, k, resid_px, keep, k3)
 
     profile = integrate_profile(data, mask, geom, with_cake=False)
     fwhm_guess = gfit.ring_fwhm_px[obs] * 10.0 / k
@@ -373,29 +484,40 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
              f"rejected as outliers"]
     if assignment.unassigned_observed.size:
         flags.append("unassigned_rings")
+    if k3:
+        r_out = k * float(np.max(g_std[np.isfinite(g_std)]))
+        notes.append(f"radial distortion k3 = {k3:.4g} ± {sig['radial_distortion_k3']:.2g} per px² "
+                     f"({100 * k3 * r_out**2:+.3f} % at the outermost assigned ring, r = {r_out:.0f} px) "
+                     f"is significant and corrected")
     order = np.argsort(g_obs)
     return Calibration(
         geometry=geom, camera_constant_sigma_A_px=sig["camera_constant"], ellipticity_sigma=sig["ellipticity"],
         ellipse_angle_sigma_deg=sig["ellipse_angle_deg"],
+        radial_distortion_k3_sigma_per_px2=sig["radial_distortion_k3"],
         ring_hkl=tuple(hkl[j] for j in assignment.standard_index[order]),
         ring_d_calc_angstrom=d_std[assignment.standard_index][order], ring_g_obs_per_nm=g_obs[order],
         ring_g_sigma_per_nm=g_sig[order], ring_fwhm_per_nm=fwhm[order], fwhm_c0_per_nm=c0, fwhm_c1=c1,
-        unassigned_g_per_nm=10.0 * radii[assignment.unassigned_observed] / k, standard=standard,
+        unassigned_g_per_nm=10.0 * undistort_radius(radii[assignment.unassigned_observed], k3) / k,
+        standard=standard,
         standard_source=standard_source, image="" if path is None else os.fspath(path),
         instrument_eta=instrument_eta, flags=tuple(flags),
         notes=tuple(notes))
 
 
-def _observed_ring_g(ring_index, g_std, observed, k, resid_px, keep) -> tuple[np.ndarray, np.ndarray]:
+def _observed_ring_g(ring_index, g_std, observed, k, resid_px, keep, k3: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
     """Observed g (1/nm) of each assigned ring and its σ: the mean sector radius at the final
-    geometry over K, from the kept sector points (``resid_px``: their radial residuals, px)."""
+    geometry over K, from the kept sector points (``resid_px``: their radial residuals, px), each
+    point's radius corrected for the radial distortion k₃ (1/px²) first."""
     ring_idx = ring_index[np.isfinite(g_std[ring_index])]
     g_obs = np.empty(observed.size)
     g_sig = np.empty(observed.size)
     for n, kk in enumerate(observed):
         sel = (ring_idx == kk) & keep
         r_true = k * g_std[kk]
-        rr = r_true + resid_px[sel]
+        if k3:
+            rr = undistort_radius(distorted_radius(r_true, k3) + resid_px[sel], k3)
+        else:
+            rr = r_true + resid_px[sel]
         g_obs[n] = 10.0 * rr.mean() / k
         g_sig[n] = 10.0 * (rr.std(ddof=1) / math.sqrt(max(sel.sum(), 1)) if sel.sum() > 1 else math.nan) / k
     return g_obs, g_sig
@@ -414,7 +536,8 @@ def _fit_fwhm_line(g, fwhm) -> tuple[float, float]:
 def calibrate_image(image_path, standard_d_angstrom, *, voltage_kv: float, standard_intensity=None,
                     standard_hkl=None, nominal_camera_constant_A_px: float | None = None, standard: str = "",
                     standard_source: str = "", user_mask_path=None, frame: int | None = None,
-                    saturation_level: float | None = None, negative_floor: float | None = None) -> Calibration:
+                    saturation_level: float | None = None, negative_floor: float | None = None,
+                    fit_radial: bool = True) -> Calibration:
     """Load, mask and calibrate one image of a standard (see :func:`calibrate_pattern`); the image
     options are those of a sample's image job."""
     from ringid.image.stage import load_and_mask
@@ -425,7 +548,7 @@ def calibrate_image(image_path, standard_d_angstrom, *, voltage_kv: float, stand
                             standard_intensity=standard_intensity, standard_hkl=standard_hkl,
                             nominal_camera_constant_A_px=nominal_camera_constant_A_px,
                             center_guess=masks.rough_center_xy, standard=standard, standard_source=standard_source,
-                            path=image_path)
+                            path=image_path, fit_radial=fit_radial)
     notes = cal.notes + img.notes + masks.notes + tuple(img.warnings)
     return Calibration(**{**cal.__dict__, "notes": notes})
 

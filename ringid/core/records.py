@@ -68,11 +68,14 @@ class CalibrationRing:
 
 @dataclass(frozen=True)
 class CalibrationRecord:
-    """A calibration: camera constant K (Å·px), centre (px), ellipse ε and angle (°), voltage (kV),
-    the standard's rings with residuals and the instrumental ring width; or a failure and its reason.
+    """A calibration: camera constant K (Å·px), centre (px), ellipse ε and angle (°), third-order radial
+    distortion k₃ (1/px², :mod:`ringid.image.radial`), voltage (kV), the standard's rings with residuals
+    and the instrumental ring width; or a failure and its reason.
 
     ``kind`` is ``standard`` (fitted on a film of a known phase), ``constant`` (a known K) or
     ``nominal`` (from a nominal camera length and pixel size). Quantities a kind does not measure are None.
+    k₃ is 0 when it was not significant (its σ is recorded all the same) or not measured (σ None); a
+    record written before k₃ was fitted reads as k₃ = 0, σ None.
     """
 
     calibration: str = ""
@@ -89,6 +92,8 @@ class CalibrationRecord:
     ellipticity_sigma: float | None = None
     ellipse_angle_deg: float = 0.0
     ellipse_angle_sigma_deg: float | None = None
+    radial_distortion_k3_per_px2: float = 0.0
+    radial_distortion_k3_sigma_per_px2: float | None = None
     wavelength_angstrom: float = math.nan
     standard: str = ""
     standard_source: str = ""
@@ -118,6 +123,7 @@ class CalibrationRecord:
             camera_constant_A_px=self.camera_constant_A_px,
             voltage_kv=self.voltage_kv,
             center_sigma_px=nan if self.center_sigma_px is None else self.center_sigma_px,
+            radial_distortion_k3_per_px2=self.radial_distortion_k3_per_px2,
         )
 
     def to_json(self) -> dict:
@@ -156,13 +162,14 @@ class CalibrationRecord:
             raise RingidError(path, "a calibration ring lacks one of its fields") from None
         optional = {k: _optional(obj.get(k)) for k in (
             "camera_constant_sigma_A_px", "center_x_px", "center_y_px", "center_sigma_px", "ellipticity_sigma",
-            "ellipse_angle_sigma_deg", "nominal_camera_constant_A_px", "camera_length_mm", "pixel_size_um",
-            "rms_residual_percent")}
+            "ellipse_angle_sigma_deg", "radial_distortion_k3_sigma_per_px2", "nominal_camera_constant_A_px",
+            "camera_length_mm", "pixel_size_um", "rms_residual_percent")}
         return cls(
             **base, **optional,
             camera_constant_A_px=_float(obj, "camera_constant_A_px", path=path),
             ellipticity=_float(obj, "ellipticity", 0.0, path),
             ellipse_angle_deg=_float(obj, "ellipse_angle_deg", 0.0, path),
+            radial_distortion_k3_per_px2=_float(obj, "radial_distortion_k3_per_px2", 0.0, path),
             wavelength_angstrom=_float(obj, "wavelength_angstrom", path=path),
             standard=str(obj.get("standard", "")), standard_source=str(obj.get("standard_source", "")),
             image=str(obj.get("image", "")), n_rings_assigned=int(obj.get("n_rings_assigned", len(rings)) or 0),
