@@ -138,8 +138,8 @@ def scaled_true_radius_from_squared(rho2, k3_per_px2: float, *, rho_max_px: floa
         np.sqrt(rho2, out=rho2)
         rho2 *= dtype(scale)
         return rho2
-    # in t = ρ²/ρ_max² ∈ [0, 1] (coefficients cₙ·(k₃ρ_max²)ⁿ of order one: no float32 underflow of k₃ⁿ), with
-    # scale·ρ_max folded into them: scale·ρ·u = √t · Σ bₙtⁿ, Horner's rule accumulated in ``work``
+    # in t = ρ²/ρ_max² ∈ [0, 1] (coefficients cₙ·(k₃ρ_max²)ⁿ of order one: no float32 underflow
+    # of k₃ⁿ), with scale·ρ_max folded into them: scale·ρ·u = √t · Σ bₙtⁿ, Horner's rule in ``work``
     x_signed = k3_per_px2 * rho_max_px**2
     b = [c * x_signed**n * scale * rho_max_px for n, c in enumerate(coeffs)]
     t = rho2
