@@ -210,7 +210,8 @@ def run_case(case, size: int) -> dict:
     smasks = build_mask(simg, saturation_level=65535.0)
     fit = refine_sample_center(simg, smasks.mask, g, center_guess=smasks.rough_center_xy)
     sg = Geometry(fit.geometry.center_x_px, fit.geometry.center_y_px, fit.geometry.ellipticity,
-                  fit.geometry.ellipse_angle_deg, camera_constant_A_px=g.camera_constant_A_px, voltage_kv=200.0)
+                  fit.geometry.ellipse_angle_deg, camera_constant_A_px=g.camera_constant_A_px, voltage_kv=200.0,
+                  radial_distortion_k3_per_px2=g.radial_distortion_k3_per_px2)
     prof = integrate_profile(simg, smasks.mask, sg, with_cake=False)
     g_true = 10.0 / d_al
     visible = g_true < prof.g_per_nm.max() * 0.98

@@ -56,7 +56,11 @@ def run(args) -> int:
                           user_mask_path=args.mask, frame=args.frame)
     write_calibration(args.output, cal, pixel_size_um=args.pixel_size_um, nominal_camera_constant_A_px=nominal)
     g = cal.geometry
+    radial = ""
+    if g.radial_distortion_k3_per_px2:
+        r_out = g.camera_constant_A_px * float(cal.ring_g_obs_per_nm.max()) / 10.0
+        radial = f", radial distortion {100 * g.radial_distortion_k3_per_px2 * r_out**2:+.3f} % at {r_out:.0f} px"
     print(f"{args.image}: K = {g.camera_constant_A_px:.3f} ± {cal.camera_constant_sigma_A_px:.3f} Å·px, "
           f"centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, ellipticity {g.ellipticity:.5f} at "
-          f"{g.ellipse_angle_deg:.1f}°, {cal.ring_d_calc_angstrom.size} rings", file=sys.stderr)
+          f"{g.ellipse_angle_deg:.1f}°{radial}, {cal.ring_d_calc_angstrom.size} rings", file=sys.stderr)
     return 0

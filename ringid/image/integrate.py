@@ -28,8 +28,9 @@ equivalent routes are provided:
     and is slower; it serves as an independent check of the radial route.
 
 This is the only module that imports pyFAI or uses PONI metres. The small-angle
-flat-detector projection (R·d = λL(1 + 1.5θ²), 0.06 % at θ = 20 mrad) is not
-corrected: by convention d = K/R, and a calibration absorbs it into K.
+flat-detector projection (R·d = λL(1 + 1.5θ²), 0.06 % at θ = 20 mrad) has the form of a
+third-order pincushion, k₃ = 3/(8L²) with L in px: a calibration from a standard takes it up in
+k₃ when it is significant, otherwise in K (by convention d = K/R).
 """
 
 from __future__ import annotations
