@@ -276,6 +276,21 @@ def write_report(
                 "folder together, or write a one-file report with report.figures: inline.</p>"] if linked else []),
              *_failure_note(rows),
              '<h2 id="summary-section">Summary</h2>', '<input placeholder="filter rows (phase, flag, sample…)" oninput="filterTable(this)">']
+    parts.append(_summary_table(rows))
+    parts += _calibration_section(results, calibrations, link_from)
+    parts += _series_section(results, series, link_from)
+    parts.append("<h2>Samples</h2>")
+    for r in rows:
+        parts.append(_sample_section(r, results / "samples" / r["sample"], link_from))
+    parts += _library_section(results)
+    parts.append("</body></html>\n")
+    path = results / "report.html"
+    write_text(path, "".join(parts))
+    return path
+
+
+def _summary_table(rows: list[dict]) -> str:
+    """The summary table: in its own scrolling box, sample names linked to their sections."""
     cols = ["sample", "status", "crystallinity", "phases", "alternatives", "confidence", "crystallite_size_nm",
             "n_rings", "unexplained_rings", "ellipticity", "flags", "error"]
     spaced = ("phases", "alternatives", "confidence", "flags")  # ";" lists with room to wrap
@@ -288,9 +303,13 @@ def write_report(
         return r[c].replace(";", "; ") if c in spaced else r[c]
 
     body = [[cell(r, c) for c in cols] for r in rows]
-    parts.append(_table(cols, body, table_id="summary", numeric={6, 7, 8, 9}, link_first="s-", boxed=True,
-                        row_class=lambda k: "failed" if rows[k]["status"] != "ok" else ""))
-    parts.append("<h2>Calibrations</h2>")
+    return _table(cols, body, table_id="summary", numeric={6, 7, 8, 9}, link_first="s-", boxed=True,
+                  row_class=lambda k: "failed" if rows[k]["status"] != "ok" else "")
+
+
+def _calibration_section(results: Path, calibrations: list[str], link_from: Path | None) -> list[str]:
+    """The calibrations table and each calibration's figure."""
+    parts = ["<h2>Calibrations</h2>"]
     cal_rows = []
     for cal in calibrations:
         try:
@@ -298,61 +317,42 @@ def write_report(
         except RingidError as exc:
             rec = CalibrationRecord(cal, kind="", status="failed", error=str(exc))
         ok = rec.status == "ok"
-        cal_rows.append([
-            cal, rec.status, rec.kind, rec.standard,
-            _num(rec.camera_constant_A_px, ".6g"),
-            _num(rec.camera_constant_sigma_A_px, ".2g"),
-            _num(rec.ellipticity if ok else None, ".5f"),
-            _num(rec.ellipse_angle_deg if ok else None, ".2f"),
-            _num(rec.voltage_kv, "g"),
-            rec.error,
-        ])
-    parts.append(
-        _table(
-            ["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)", "kV", "error"],
-            cal_rows,
-            numeric={4, 5, 6, 7, 8},
-        )
-    )
+        cal_rows.append([cal, rec.status, rec.kind, rec.standard, _num(rec.camera_constant_A_px, ".6g"),
+                         _num(rec.camera_constant_sigma_A_px, ".2g"), _num(rec.ellipticity if ok else None, ".5f"),
+                         _num(rec.ellipse_angle_deg if ok else None, ".2f"), _num(rec.voltage_kv, "g"), rec.error])
+    parts.append(_table(["calibration", "status", "kind", "standard", "K (Å·px)", "σK", "ellipticity", "angle (°)",
+                         "kV", "error"], cal_rows, numeric={4, 5, 6, 7, 8}))
     for cal in calibrations:
         fig = results / "calibrations" / f"{cal}.png"
         if fig.exists():
-            parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration residuals of {cal}", link_from))
-    if series:
-        parts.append('<h2 id="series-section">Series</h2>')
-        for name in series:
-            fig = results / "series" / f"{name}.png"
-            table = _read_csv(results / "series" / f"{name}.csv")
-            gaps = [r["sample"] for r in table if r.get("status") != "ok" or not (r.get("phases") or
-                                                                               r.get("crystallinity") == "amorphous")]
-            parts.append(f"<h3>{_e(name)}</h3><p class=\"meta\">{len(table)} samples (table: "
-                         f'<a href="series/{_e(name)}.csv">series/{_e(name)}.csv</a>)'
-                         + (f"; shown as gaps (failed or unidentified): {_e(', '.join(gaps))}" if gaps else "")
-                         + "</p>" + (_img(fig, f"series {name}", link_from) if table else
-                                     '<p class="meta">no sample gives a value of its variable</p>'))
-    parts.append("<h2>Samples</h2>")
-    for r in rows:
-        parts.append(_sample_section(r, results / "samples" / r["sample"], link_from))
-    parts.append("<h2>Phase library</h2>")
+            parts.append(f"<h3>{_e(cal)}</h3>" + _img(fig, f"calibration of {cal}", link_from))
+    return parts
+
+
+def _series_section(results: Path, series, link_from: Path | None) -> list[str]:
+    """Each series' figure, with a link to its table and the members shown as gaps."""
+    if not series:
+        return []
+    parts = ['<h2 id="series-section">Series</h2>']
+    for name in series:
+        fig = results / "series" / f"{name}.png"
+        table = _read_csv(results / "series" / f"{name}.csv")
+        gaps = [r["sample"] for r in table
+                if r.get("status") != "ok" or not (r.get("phases") or r.get("crystallinity") == "amorphous")]
+        parts.append(f"<h3>{_e(name)}</h3><p class=\"meta\">{len(table)} samples (table: "
+                     f'<a href="series/{_e(name)}.csv">series/{_e(name)}.csv</a>)'
+                     + (f"; shown as gaps (failed or unidentified): {_e(', '.join(gaps))}" if gaps else "")
+                     + "</p>" + (_img(fig, f"series {name}", link_from) if table else
+                                 '<p class="meta">no sample gives a value of its variable</p>'))
+    return parts
+
+
+def _library_section(results: Path) -> list[str]:
+    """The phase library's index table."""
     index = _read_csv(results / "library" / "index.csv")
-    if index:
-        cols = [
-            "phase",
-            "formula",
-            "space_group",
-            "a",
-            "b",
-            "c",
-            "alpha",
-            "beta",
-            "gamma",
-            "n_rings",
-            "status",
-            "error",
-            "title",
-        ]
-        parts.append(_table(cols, [[r.get(c, "") for c in cols] for r in index], numeric={3, 4, 5, 6, 7, 8, 9}))
-    parts.append("</body></html>\n")
-    path = results / "report.html"
-    write_text(path, "".join(parts))
-    return path
+    if not index:
+        return ["<h2>Phase library</h2>"]
+    cols = ["phase", "formula", "space_group", "a", "b", "c", "alpha", "beta", "gamma", "n_rings", "status", "error",
+            "title"]
+    return ["<h2>Phase library</h2>",
+            _table(cols, [[r.get(c, "") for c in cols] for r in index], numeric={3, 4, 5, 6, 7, 8, 9})]
