@@ -60,12 +60,22 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"ringid: error: {exc}", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print("ringid: interrupted", file=sys.stderr)
-        return 130
     except BrokenPipeError:  # output piped into e.g. `head`
         sys.stderr.close()
         return 0
+    except Exception as exc:  # noqa: BLE001 - a bug must still end in one line naming it, not a traceback
+        if args.debug:
+            raise
+        import traceback
+
+        last = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
+        where = f" at {last.filename.rsplit('/', 1)[-1]}:{last.lineno}" if last else ""
+        print(f"ringid: error: internal error ({type(exc).__name__}: {' '.join(str(exc).split())}){where}; "
+              "run with --debug for the traceback", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("ringid: interrupted", file=sys.stderr)
+        return 130
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -296,7 +296,8 @@ def series_png(path: str | os.PathLike, *, title: str, variable: str, columns: l
     ax_f.set_ylim(0, 1.02)
     ax_f.set_ylabel("share of\nscattering", fontsize=8)
     ax_f.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False)
-    if any(ax_s.get_lines()):  # sizes span decades (nanocrystals to the instrument's limit): a log axis
+    sizes = [y for line in ax_s.get_lines() for y in np.asarray(line.get_ydata(), float) if np.isfinite(y) and y > 0]
+    if sizes:  # sizes span decades (nanocrystals to the instrument's limit): a log axis
         ax_s.set_yscale("log")
     ax_s.set_ylabel("crystallite\nsize (nm)", fontsize=8)
     if ax_s.get_legend_handles_labels()[0]:
@@ -310,5 +311,16 @@ def series_png(path: str | os.PathLike, *, title: str, variable: str, columns: l
     for ax in (ax_f, ax_s, ax_a):
         ax.tick_params(labelsize=7)
     fig.tight_layout()
+    _save_small_png(fig, path)
+    plt.close(fig)
+
+
+def message_png(path: str | os.PathLike, text: str) -> None:
+    """A small figure that says, in words, why the figure meant for ``path`` could not be drawn."""
+    import textwrap
+
+    plt = _pyplot()
+    fig = plt.figure(figsize=(6.0, 1.2), dpi=100)
+    fig.text(0.02, 0.5, "\n".join(textwrap.wrap(text, 100)), fontsize=8, va="center", ha="left", color="#a61b1b")
     _save_small_png(fig, path)
     plt.close(fig)

@@ -96,9 +96,13 @@ def write_series(results_dir: str | os.PathLike, name: str, samples, variable: s
     table = out / f"{name}.csv"
     write_csv(table, columns, ([_cell(r.get(c)) for c in columns] for r in rows))
     figure = out / f"{name}.png"
-    from ringid.report.figures import series_png
+    from ringid.report.figures import message_png, series_png
 
-    series_png(figure, title=f"series {name}", variable=variable, columns=columns, rows=rows)
+    try:
+        series_png(figure, title=f"series {name}", variable=variable, columns=columns, rows=rows)
+    except (ValueError, RuntimeError, TypeError) as exc:  # the table stands; the figure says why it is missing
+        message_png(figure, f"series {name}: the figure could not be drawn ({type(exc).__name__}: {exc}); "
+                            f"the table is series/{name}.csv")
     return table, figure
 
 
