@@ -74,7 +74,7 @@ phase of which the match is only a part). Phases within ln 10 of p are listed as
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
 
@@ -213,6 +213,11 @@ class Identification:
     rejected: tuple[dict, ...] = ()  # phases the greedy search proposed that the rate control dropped
     #: one lattice that indexes every ring, when it replaced the answer: system, a_angstrom[, c_angstrom], de_wolff_m
     single_lattice: dict | None = None
+    elements: tuple[str, ...] = ()  # the sample's elements the search was restricted to (empty: none)
+    phases_within_elements: int | None = None  # library phases made of them (None: no restriction)
+    #: phases of other elements the unrestricted search reports, scoring above the restricted answer:
+    #: phase, elements, score, confidence, false_identification_probability (unrestricted)
+    better_match_outside_elements: tuple[dict, ...] = ()
 
     @property
     def unexplained_rings(self) -> int:
@@ -278,10 +283,22 @@ class LibraryIndex:
     start: np.ndarray  # first flat index of each row
     stop: np.ndarray
     decoy_clearance: float = DEFAULT_DECOY_CLEARANCE  # widest dilation window the decoys stay clear of
+    #: library phase of each row (a phase is its own parent; a decoy's is the phase it was made from)
+    parent: np.ndarray | None = None
+    #: elements of each library phase (None: unknown), from ``ringid.core.elements.phase_elements``
+    elements: tuple[frozenset[str] | None, ...] = ()
 
     @property
     def n_rows(self) -> int:
         return len(self.phases) + len(self.decoys)
+
+    def rows_within(self, elements) -> np.ndarray:
+        """Mask over the rows: the library phases made of ``elements`` only (a phase's elements ⊆
+        the given ones; a phase of unknown elements is left out) and the decoys of those phases,
+        which inherit their parent's elements."""
+        allowed = set(elements)
+        own = np.array([e is not None and e <= allowed for e in self.elements], dtype=bool)
+        return own[self.parent] if len(own) else np.zeros(self.n_rows, dtype=bool)
 
 
 KEY_STRIDE = 1.0e4  # 1/nm; larger than any ring's g
@@ -333,6 +350,9 @@ def index_library(library: list[PhaseRings], decoy_clearance: float = DEFAULT_DE
         raise RingidError(None, "a library ring has g beyond 1e4 1/nm (d < 0.001 Å)")
     inten = np.concatenate([a.intensity for a in rows]) if rows else np.zeros(0)
     stop = np.cumsum(counts)
+    from ringid.core.elements import phase_elements
+
+    parent = np.concatenate([np.arange(len(arrays)), np.repeat(np.arange(len(arrays)), per)]).astype(int)
     return LibraryIndex(
         arrays,
         decoys,
@@ -344,6 +364,8 @@ def index_library(library: list[PhaseRings], decoy_clearance: float = DEFAULT_DE
         stop - counts,
         stop,
         decoy_clearance,
+        parent,
+        tuple(phase_elements(a.meta) for a in arrays),
     )
 
 
@@ -691,6 +713,7 @@ def identify(
     *,
     g_range_per_nm: tuple[float, float] | None = None,
     detection_limit_area: float | None = None,
+    elements=None,
 ) -> Identification:
     """Identify the phases of one sample.
 
@@ -705,11 +728,61 @@ def identify(
     detection_limit_area : float, optional
         Smallest ring area the profile's noise allows to detect; default: the weakest observed
         ring's area.
+    elements : iterable of element symbols, optional
+        The sample's elements: only library phases made of them (and those phases' decoys) are
+        searched, so the null and the number of phases searched are those of that part of the
+        library. A phase of other elements that the unrestricted search would have reported (its
+        false-identification probability within the rate) and that scores more than
+        ``alternative_margin`` above the restricted answer (or the restricted answer is empty) is
+        named in ``better_match_outside_elements`` (flag of the same name).
     """
     lib = _index_for(library, settings)
+    elements = tuple(sorted(set(elements or ())))
     if len(obs) == 0:
-        return Identification((), (), (), (), (), (), (), (), (), ("no_rings",))
+        return Identification((), (), (), (), (), (), (), (), (), ("no_rings",), elements=elements)
     ctx = _score_sample(obs, lib, settings, g_range_per_nm, detection_limit_area)
+    if not elements:
+        return _answer(ctx)
+    within = lib.rows_within(elements)
+    restricted = _answer(_restrict(ctx, within))
+    # would a phase made of other elements have been reported, searched without the restriction, and
+    # score so far above the restricted answer that this would not even be its alternative (more than
+    # the alternatives' margin)? The rows were scored once; only the selection is redone.
+    unrestricted = _answer(ctx)
+    best_within = max((c.score for c in restricted.candidates if c.in_answer), default=-math.inf)
+    row_of = {ph.phase: q for q, ph in enumerate(lib.phases)}
+    scores = {c.phase: c.score for c in unrestricted.candidates}
+    outside = [
+        {"phase": ph, "elements": sorted(lib.elements[row_of[ph]] or ()), "score": scores[ph], "confidence": conf,
+         "false_identification_probability": p_false}
+        for ph, conf, p_false in zip(unrestricted.phases, unrestricted.confidence,
+                                     unrestricted.false_identification_probability)
+        if not within[row_of[ph]] and scores[ph] - best_within > settings.alternative_margin
+    ]
+    flags = restricted.flags + (("better_match_outside_elements",) if outside else ())
+    return replace(restricted, elements=elements, phases_within_elements=int(within[:len(lib.phases)].sum()),
+                   better_match_outside_elements=tuple(outside), flags=flags)
+
+
+def _restrict(ctx: _Sample, rows_mask: np.ndarray) -> _Sample:
+    """The sample's context with only the index rows of ``rows_mask`` (library phases and their
+    decoys): the selection, the null and the number of phases searched are those of this part of
+    the library. The rows keep the scores they got (a row's score does not depend on the others)."""
+    n_ph = ctx.n_phases
+    scored = ctx.rows
+    sub = {f.name: getattr(scored, f.name) for f in fields(scored)}
+    for name, value in sub.items():
+        if name != "missing_strong":  # a flat mask over the index's rings, used only by the matches
+            sub[name] = value[rows_mask]
+    keep = np.flatnonzero(rows_mask[:n_ph])
+    matches = [ctx.matches[q] for q in keep]
+    return replace(ctx, rows=_RowScores(**sub), matches=matches,
+                   arrays_by_name={m.phase: ctx.arrays_by_name[m.phase] for m in matches})
+
+
+def _answer(ctx: _Sample) -> Identification:
+    """Select, control the rate, assign the rings and label the answer of a scored sample."""
+    obs, settings = ctx.obs, ctx.settings
     chosen, chosen_p, rejected = _select(ctx)
     assignments = _assign_rings(chosen, ctx.arrays_by_name, obs, ctx.tau)
     unexplained = tuple(i for i in range(ctx.n) if assignments[i] is None)
@@ -840,7 +913,7 @@ def _confidences(ctx: _Sample, chosen, chosen_p, unexplained_share):
     all_ev = rows.evidence[:n_ph]
     all_terms = rows.phase_terms[:n_ph]
     chosen_ids = {id(c) for c in chosen}
-    swappable = np.array([id(m) not in chosen_ids for m in ctx.matches]) & ~rows.lattice_mismatch[:n_ph]
+    swappable = np.array([id(m) not in chosen_ids for m in ctx.matches], dtype=bool) & ~rows.lattice_mismatch[:n_ph]
     sigma_alpha = settings.dilation_sigma or settings.dilation_window / 2
     confidences, alternatives, separations = [], [], []
     for p, p_false in zip(chosen, chosen_p):
