@@ -124,4 +124,4 @@ s1,a.tif,film,300
         read_samples(samples)
     (line,) = info.value.lines
     assert line == (f"{samples}:1: unknown column 'temperature'; the columns are sample, image, calibration, "
-                    "voltage_kv, note (columns of your own: start their names with 'x_')")
+                    "voltage_kv, note, elements (columns of your own: start their names with 'x_')")

@@ -30,6 +30,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--library", required=True, metavar="LIB", help="phase library folder (ringid library build)")
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
     p.add_argument("--sample", metavar="ID", help="sample id (default: the image's stem)")
+    p.add_argument("--elements", default="", metavar="SYMBOLS",
+                   help="the sample's elements, e.g. 'Ti O': only library phases made of them are candidates")
     add_image_options(p)
     p.set_defaults(func=run)
 
@@ -41,6 +43,7 @@ def run(args) -> int:
 
     from ringid.core.errors import RingidError
     from ringid.library.store import load_library
+    from ringid.commands.measure import _elements
     from ringid.jobs.measure import identify_sample, make_calibration, measure_sample
     from ringid.jobs.sheets import CalibrationRow
 
@@ -69,7 +72,8 @@ def run(args) -> int:
         step("image -> profile -> rings")
         rec = measure_sample(args.image, cal_path, out, sample=sample, max_pixels=args.max_pixels,
                              saturation_level=args.saturation_level, user_mask=args.mask, frame=args.frame,
-                             negative_floor=args.negative_floor, min_ring_g_per_nm=args.min_ring_g_per_nm)
+                             negative_floor=args.negative_floor, min_ring_g_per_nm=args.min_ring_g_per_nm,
+                             elements=_elements(args.elements))
     if rec.status != "ok":
         raise RingidError(None, rec.error)  # the recorded error names the file already
     step(f"{rec.crystallinity}, {rec.n_rings} rings; identifying")

@@ -4,10 +4,10 @@
     ringid batch identify SAMPLE_DIR [SAMPLE_DIR ...] --library LIB
 
 ``measure`` runs the image job of every row of MANIFEST (a sample sheet: sample, image,
-calibration[, voltage_kv, note]; ``-``: read it from stdin) into SAMPLES_DIR/{sample}/; ``identify`` identifies measured
-sample folders against one loaded library. Each sample's files are those of ``ringid measure``
-and ``ringid identify --sample-dir``; a sample that fails is recorded as failed and the others go
-on. Exit 0 when every sample's files were written (failed samples included).
+calibration[, voltage_kv, note, elements]; ``-``: read it from stdin) into SAMPLES_DIR/{sample}/;
+``identify`` identifies measured sample folders against one loaded library. Each sample's files
+are those of ``ringid measure`` and ``ringid identify --sample-dir``; a sample that fails is
+recorded as failed and the others go on. Exit 0 when every sample's files were written (failed samples included).
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument(
         "manifest",
         metavar="MANIFEST",
-        help="sample sheet CSV: sample,image,calibration[,voltage_kv,note]; - reads it from stdin",
+        help="sample sheet CSV: sample,image,calibration[,voltage_kv,note,elements]; - reads it from stdin",
     )
     p.add_argument("--calibrations-dir", required=True, metavar="DIR",
                    help="folder of the calibration records, DIR/{calibration}.json (ringid calibration)")

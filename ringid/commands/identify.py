@@ -41,6 +41,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
                    help="g range of the profile in which rings could be detected (default: the observed rings)")
     p.add_argument("--phases", type=lambda text: [p for p in text.split(",") if p], metavar="PHASE,PHASE",
                    help="score only against these phases (comma-separated, e.g. CeO2,Au)")
+    p.add_argument("--elements", default="", metavar="SYMBOLS",
+                   help="with RINGS, --d-angstrom or --d-list: consider only library phases made of these elements "
+                        "(e.g. 'Ti O'); a far better phase of other elements is named (better_match_outside_elements)")
     p.add_argument("--false-identification-rate", type=float, default=FALSE_IDENTIFICATION_RATE, metavar="RATE",
                    help="report a phase only when the chance that an absent phase scores as well is below RATE, "
                         "controlled over the phases of a sample (default %(default)s)")
@@ -70,6 +73,9 @@ def run(args) -> int:
     reuse_freed_arrays()
     library = load_library(args.library)
     if args.sample_dir:
+        if args.elements:
+            raise RingidError(None, "--elements does not go with --sample-dir: the sample's elements are those its "
+                                    "sample.json records (ringid measure --elements, or the sheet's elements column)")
         from ringid.jobs.measure import identification_summary, identify_sample
 
         out = identify_sample(args.sample_dir, library, window_standard=args.window_standard,
@@ -104,8 +110,11 @@ def run(args) -> int:
                                 intensity_weight=IdentifySettings.intensity_weight if intensities_known else 0.0)
     if args.dilation_window is not None and not 0 < args.dilation_window < 0.5:
         raise RingidError(None, f"--dilation-window must be between 0 and 0.5, got {args.dilation_window}")
+    from ringid.commands.measure import _elements
+
     result = identify(
-        obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None
+        obs, library, settings, g_range_per_nm=tuple(args.g_range_per_nm) if args.g_range_per_nm else None,
+        elements=_elements(args.elements),
     )
     from ringid.library.store import unavailable_phases
 

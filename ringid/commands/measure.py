@@ -11,6 +11,9 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--sample", metavar="ID", help="sample id (default: the image's stem)")
     p.add_argument("--calibration-id", default="", metavar="ID", help="calibration id, for the record")
     p.add_argument("--note", default="", help="free text carried into the report")
+    p.add_argument("--elements", default="", metavar="SYMBOLS",
+                   help="the sample's elements, e.g. 'Ti O' (recorded; identification then considers only "
+                        "library phases made of them)")
     p.add_argument(
         "--voltage-kv",
         type=float,
@@ -50,10 +53,22 @@ def run(args) -> int:
     rec = measure_sample(args.image, args.calibration, args.output, sample=args.sample or Path(args.image).stem,
                          calibration_id=args.calibration_id, note=args.note, voltage_kv=args.voltage_kv,
                          max_pixels=args.max_pixels, saturation_level=args.saturation_level, user_mask=args.mask,
-                         frame=args.frame, negative_floor=args.negative_floor, min_ring_g_per_nm=args.min_ring_g_per_nm)
+                         frame=args.frame, negative_floor=args.negative_floor, min_ring_g_per_nm=args.min_ring_g_per_nm,
+                         elements=_elements(args.elements))
     if rec.status == "ok":
         print(f"{args.image}: {rec.crystallinity}, {rec.n_rings} rings ({rec.timings_s['total']:.2f} s)",
               file=sys.stderr)
     else:
         print(f"ringid: warning: {rec.error} (recorded as failed)", file=sys.stderr)
     return 0
+
+
+def _elements(text: str) -> tuple[str, ...]:
+    """The element symbols of ``--elements``, or a one-line error."""
+    from ringid.core.elements import parse_elements
+    from ringid.core.errors import RingidError
+
+    try:
+        return parse_elements(text)
+    except ValueError as exc:
+        raise RingidError(None, f"--elements {text!r}: {exc}") from None

@@ -220,7 +220,8 @@ class SampleRecord:
 
     geometry: centre (px), ε, angle (°), K (Å·px), kV of this pattern; sizes in nm (None when not
     measured; a lower limit when the rings are not broader than the instrument); g_range_per_nm the
-    profile's g range (1/nm) searched for rings; timings_s the only non-deterministic field.
+    profile's g range (1/nm) searched for rings; timings_s the only non-deterministic field;
+    elements the sample sheet's element symbols (the last key, added after the others).
     """
 
     sample: str
@@ -251,6 +252,7 @@ class SampleRecord:
     notes: tuple[str, ...] = ()
     warnings: tuple[str, ...] = ()
     timings_s: dict = field(default_factory=dict, compare=False)
+    elements: tuple[str, ...] = ()  # the sheet's element symbols: only phases made of them are candidates
 
     _IDENTITY_KEYS = ("sample", "status", "error", "image", "calibration", "note", "ringid_version")
     _FAILED_KEYS = _IDENTITY_KEYS + ("crystallinity", "n_rings", "flags", "timings_s")
@@ -278,8 +280,10 @@ class SampleRecord:
             raise RingidError(path, "not a sample record (no sample id, or status not ok/failed)")
         known = {f.name for f in fields(cls)}
         kw = {k: v for k, v in obj.items() if k in known}
-        for k in ("flags", "notes", "warnings"):
+        for k in ("flags", "notes", "warnings", "elements"):
             kw[k] = tuple(kw.get(k) or ())
+        if not all(isinstance(e, str) for e in kw["elements"]):
+            raise RingidError(path, "elements of a sample record must be element symbols (strings)")
         if kw.get("geometry") is not None:
             geo = kw["geometry"]
             kw["geometry"] = Geometry(**{g: _float(geo, g, path=path) for g in cls._GEOMETRY_KEYS})

@@ -185,6 +185,12 @@ def write_results(out_dir: str | os.PathLike, rows: list[dict], obs: ObservedRin
             }
             for i in result.unexplained
         ],
+        "elements": list(result.elements),
+        "phases_within_elements": result.phases_within_elements,
+        "better_match_outside_elements": [
+            {k: (_round_sig(v) if isinstance(v, float) else v) for k, v in m.items()}
+            for m in result.better_match_outside_elements
+        ],
         "flags": list(result.flags) + (["library_incomplete"] if unavailable else []),
         "unavailable_phases": [{"phase": p, "error": e} for p, e in unavailable],
         "settings": {k: getattr(settings, k) for k in settings.__dataclass_fields__},

@@ -9,7 +9,7 @@ after another (one image in memory at a time), and every sample's files are exac
 is recorded as failed in its own files and the loop goes on with the next one.
 
 Every workflow run goes through batches; ``batch_size: 1`` makes batches of one sample each.
-The manifest of a batch is a sample sheet (``sample,image,calibration,voltage_kv,note``) with
+The manifest of a batch is a sample sheet (``sample,image,calibration,voltage_kv,note,elements``) with
 absolute image paths, read back with ``ringid.jobs.sheets``; the workflow feeds it on stdin.
 This module imports only the standard library at module level (the workflow imports it when it
 starts).
@@ -24,7 +24,7 @@ import sys
 import time
 from dataclasses import dataclass
 
-MANIFEST_COLUMNS = ["sample", "image", "calibration", "voltage_kv", "note"]
+MANIFEST_COLUMNS = ["sample", "image", "calibration", "voltage_kv", "note", "elements"]
 
 
 def make_batches(sample_ids, batch_size: int) -> dict[str, list[str]]:
@@ -47,7 +47,8 @@ def make_batches(sample_ids, batch_size: int) -> dict[str, list[str]]:
 def manifest_text(rows) -> str:
     """The manifest (CSV text) of sample-sheet rows (``ringid.jobs.sheets.SampleRow``).
 
-    The voltage is written with ``%g``, as ``ringid measure --voltage-kv`` would take it.
+    The voltage is written with ``%g``, as ``ringid measure --voltage-kv`` would take it; the
+    elements as their symbols separated by spaces.
     """
     import io
 
@@ -56,7 +57,8 @@ def manifest_text(rows) -> str:
     w.writerow(MANIFEST_COLUMNS)
     for r in rows:
         w.writerow(
-            [r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note]
+            [r.sample, r.image, r.calibration, f"{r.voltage_kv:g}" if math.isfinite(r.voltage_kv) else "", r.note,
+             " ".join(r.elements)]
         )
     return buf.getvalue()
 
@@ -121,7 +123,7 @@ def measure_batch(rows, calibrations_dir: str, samples_dir: str, options: ImageO
                                  voltage_kv=row.voltage_kv, max_pixels=options.max_pixels,
                                  saturation_level=options.saturation_level, user_mask=options.user_mask,
                                  frame=options.frame, negative_floor=options.negative_floor,
-                                 min_ring_g_per_nm=options.min_ring_g_per_nm)
+                                 min_ring_g_per_nm=options.min_ring_g_per_nm, elements=row.elements)
         except Exception as exc:  # noqa: BLE001 - one sample's failure never stops the batch
             try:
                 rec = write_failed_sample(out, exc, sample=row.sample, image=row.image, calibration_id=row.calibration,

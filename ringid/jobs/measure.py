@@ -66,13 +66,14 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
                    sample: str, calibration_id: str = "", note: str = "", voltage_kv: float = math.nan,
                    max_pixels: int | None = None, saturation_level: float | None = None, user_mask=None,
                    frame: int | None = None, negative_floor: float | None = None,
-                   min_ring_g_per_nm: float = DEFAULT_MIN_RING_G_PER_NM) -> dict:
+                   min_ring_g_per_nm: float = DEFAULT_MIN_RING_G_PER_NM, elements=()) -> dict:
     """Run the image half and the ring stage for one sample; write its folder; return the record.
 
     Rings are searched from ``min_ring_g_per_nm`` outwards (default 1 nm⁻¹, d ≤ 10 Å): inside it
     the direct beam's tail dominates a SAED profile. Lower it for phases with larger d-spacings.
     ``frame`` (None: sum a stack) and ``negative_floor`` (None: keep negative values) are those of
-    :func:`ringid.image.stage.load_and_mask`.
+    :func:`ringid.image.stage.load_and_mask`. ``elements``: the sample's element symbols (from
+    the sheet), recorded for the identification job.
     """
 
     out = Path(out_dir)
@@ -86,7 +87,8 @@ def measure_sample(image: str | os.PathLike, calibration_path: str | os.PathLike
                           negative_floor=negative_floor, min_ring_g_per_nm=min_ring_g_per_nm)
     except Exception as exc:  # noqa: BLE001 - a failure is a result, recorded with its reason
         record = _mark_failed(out, identity, exc)
-    record = replace(record, timings_s={**record.timings_s, "total": round(time.perf_counter() - t_start, 4)})
+    record = replace(record, timings_s={**record.timings_s, "total": round(time.perf_counter() - t_start, 4)},
+                     elements=tuple(elements))
     write_sample_record(out / "sample.json", record)  # written last: its presence means the job finished
     return record
 
@@ -263,7 +265,7 @@ def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: 
     if not isinstance(library, LibraryIndex):
         library = library_index(library, window_standard, window_nominal)
     obs, rows = read_observed_rings(d / "measured_rings.csv")
-    result = identify(obs, library, settings, g_range_per_nm=rec.g_range_per_nm)
+    result = identify(obs, library, settings, g_range_per_nm=rec.g_range_per_nm, elements=rec.elements)
     if unavailable is None:
         from ringid.library.store import unavailable_phases
 

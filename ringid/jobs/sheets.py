@@ -1,6 +1,8 @@
 """Sample and calibration sheets: read and validate, reporting every problem at once.
 
-Sample sheet (CSV): ``sample,image,calibration`` and optional ``voltage_kv,note``.
+Sample sheet (CSV): ``sample,image,calibration`` and optional ``voltage_kv,note,elements``
+(``elements``: the sample's element symbols, space- or comma-separated, e.g. ``Ti O``; only library
+phases made of them are candidates; empty: no restriction).
 Calibration sheet (CSV), one of three kinds per row:
 
 - ``calibration,image,standard,voltage_kv``: a film of a known phase (``standard`` is a phase
@@ -27,7 +29,7 @@ from pathlib import Path
 from ringid.core.errors import RingidError
 
 SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,127}$")
-SAMPLE_COLUMNS = ("sample", "image", "calibration", "voltage_kv", "note")
+SAMPLE_COLUMNS = ("sample", "image", "calibration", "voltage_kv", "note", "elements")
 CALIBRATION_COLUMNS = ("calibration", "voltage_kv", "image", "standard", "camera_constant_A_px", "camera_length_mm",
                        "pixel_size_um")
 OWN_COLUMN_PREFIX = "x_"  # columns of the user's own (ignored by ringid) start with this
@@ -40,6 +42,7 @@ class SampleRow:
     calibration: str
     voltage_kv: float = math.nan
     note: str = ""
+    elements: tuple[str, ...] = ()  # element symbols, sorted (empty: no restriction)
     values: tuple[tuple[str, str], ...] = ()  # the config's extra columns (series variables), as text
 
     def value(self, column: str) -> str:
@@ -265,6 +268,14 @@ def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow
             cv = calibrations[cal].voltage_kv
             if math.isfinite(cv) and abs(cv - volt) > 1e-6 * cv:
                 problems.add(f"{path}:{n}", f"voltage_kv {volt:g} differs from its calibration {cal!r} ({cv:g} kV)")
+        elements: tuple[str, ...] = ()
+        if r.get("elements"):
+            from ringid.core.elements import parse_elements
+
+            try:
+                elements = parse_elements(r["elements"])
+            except ValueError as exc:
+                problems.add(f"{path}:{n}", f"elements {r['elements']!r}: {exc}")
         values = []
         for column, kind in extra.items():
             text = r.get(column, "")
@@ -275,7 +286,7 @@ def read_samples(path: str | os.PathLike, calibrations: dict[str, CalibrationRow
                 except ValueError:
                     problems.add(f"{path}:{n}", f"{column} {text!r} is not a number")
             values.append((column, text))
-        out[sid] = SampleRow(sid, image, cal, volt, r.get("note", ""), tuple(values))
+        out[sid] = SampleRow(sid, image, cal, volt, r.get("note", ""), elements, tuple(values))
     if own:
         problems.raise_if_any("the sample sheet")
     return out
