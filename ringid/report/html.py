@@ -235,6 +235,19 @@ def _identification_notes(ident: dict) -> list[str]:
             out.append(f'<p class="meta">{_e(m.get("phase", ""))} fits only with its lattice scaled by '
                        f"{(float(dil) - 1) * 100:+.2f}{_e(sig_text)} %, outside the calibration's window: "
                        "a different phase of the same structure type, or a calibration that is off.</p>")
+    elements = ident.get("elements") or []
+    if elements:
+        within = ident.get("phases_within_elements")
+        count = f" ({within} library phase{'s' if within != 1 else ''})" if isinstance(within, int) else ""
+        out.append(f'<p class="meta">Searched only the phases made of {_e(" ".join(elements))}{_e(count)}, '
+                   "as the sample sheet's elements column says.</p>")
+    for m in ident.get("better_match_outside_elements", []):
+        p = m.get("false_identification_probability")
+        p_text = f", false-identification probability {float(p):.2g}" if isinstance(p, (int, float)) else ""
+        out.append(f'<p class="meta"><b>A far better match outside the elements:</b> {_e(m.get("phase", ""))} '
+                   f"({_e(' '.join(m.get('elements') or []))}; score {_num(m.get('score'), '.1f')}{_e(p_text)}) "
+                   "would have been reported without the restriction and scores well above the answer within "
+                   "the elements: check the sample's elements.</p>")
     for m in ident.get("not_significant", []):
         p = m.get("false_identification_probability")
         if isinstance(p, (int, float)):
