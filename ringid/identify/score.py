@@ -739,7 +739,9 @@ def identify(
     lib = _index_for(library, settings)
     elements = tuple(sorted(set(elements or ())))
     if len(obs) == 0:
-        return Identification((), (), (), (), (), (), (), (), (), ("no_rings",), elements=elements)
+        within_count = int(lib.rows_within(elements)[:len(lib.phases)].sum()) if elements else None
+        return Identification((), (), (), (), (), (), (), (), (), ("no_rings",), elements=elements,
+                              phases_within_elements=within_count)
     ctx = _score_sample(obs, lib, settings, g_range_per_nm, detection_limit_area)
     if not elements:
         return _answer(ctx)
@@ -767,7 +769,9 @@ def identify(
 def _restrict(ctx: _Sample, rows_mask: np.ndarray) -> _Sample:
     """The sample's context with only the index rows of ``rows_mask`` (library phases and their
     decoys): the selection, the null and the number of phases searched are those of this part of
-    the library. The rows keep the scores they got (a row's score does not depend on the others)."""
+    the library. The rows keep the scores they got (a row's score does not depend on the others), and
+    one chance ring's worth of score (the tail's smallest scale) stays that of all the decoys, a
+    property of the sample's rings that a few kept decoys would estimate less well."""
     n_ph = ctx.n_phases
     scored = ctx.rows
     sub = {f.name: getattr(scored, f.name) for f in fields(scored)}

@@ -11,7 +11,7 @@
 # dies (killed for memory, say) is followed by its own command with --after-crash, which records
 # every sample it left unwritten as failed with the reason, so the report is still written.
 # The batch's manifest (its sample-sheet rows) is a parameter, fed to the job on stdin: a changed
-# note, voltage or membership reruns that batch only, and no extra job writes a file for it. A
+# note, voltage, elements or membership reruns that batch only, and no extra job writes a file for it. A
 # rebuilt library reruns the identification jobs only. Both jobs of a batch are in the group
 # "per_batch": on a cluster they can share one scheduler job (--group-components per_batch=N).
 
