@@ -107,3 +107,31 @@ def test_spotty_and_textured_rings_are_modulated_in_azimuth():
     assert cv_spotty > 5 * max(cv_smooth, 0.02)
     # the azimuthal mean is kept: total ring intensity about the same
     assert spotty.sum() == pytest.approx(smooth.sum(), rel=0.02)
+
+
+@pytest.mark.parametrize("eps, angle", [(0.0, 0.0), (0.012, 28.0), (0.025, -35.0), (0.04, 90.0), (0.3, 61.0)])
+def test_simulator_distortion_agrees_with_the_analysis_ellipse(eps, angle):
+    """Two implementations of the distortion of docs/design.md ("Conventions"): the simulator's own
+    forward model (simulate.true_offsets) and the analysis's map (ringid.image.ellipse)."""
+    from ringid.image.ellipse import distortion_matrix, undistorted_offsets
+    from ringid.synthetic.simulate import true_offsets
+
+    shape, cx, cy = (96, 120), 57.3, 41.8
+    ux, uy = true_offsets(shape, cx, cy, eps, angle)
+    vx, vy = undistorted_offsets(shape, cx, cy, eps, angle)
+    # float32 arithmetic on offsets up to ~100 px: agreement to a few float32 ulps (2^-23 relative)
+    assert np.allclose(ux, vx, rtol=0, atol=1e-4) and np.allclose(uy, vy, rtol=0, atol=1e-4)
+    # and both with the convention itself: points of the ellipse with semi-axes a = R/√(1−ε) along θ and
+    # b = R·√(1−ε) across it map to true radius R; the analysis's forward matrix draws them there
+    r_true, t = 40.0, math.radians(angle)
+    phi = np.linspace(0, 2 * math.pi, 13)
+    a, b = r_true / math.sqrt(1 - eps), r_true * math.sqrt(1 - eps)
+    px = a * np.cos(phi) * math.cos(t) - b * np.sin(phi) * math.sin(t)
+    py = a * np.cos(phi) * math.sin(t) + b * np.sin(phi) * math.cos(t)
+    # pixel (row, col) = (cy + py, cx + px) only at integer positions: evaluate the maps on a grid shifted
+    # so that each point is a pixel centre
+    for x, y in zip(px, py):
+        u = true_offsets((1, 1), -x, -y, eps, angle)
+        assert math.hypot(float(u[0][0, 0]), float(u[1][0, 0])) == pytest.approx(r_true, abs=1e-4)
+    u_pts = np.linalg.solve(distortion_matrix(eps, angle), np.vstack([px, py]))
+    assert np.allclose(np.hypot(*u_pts), r_true, atol=1e-9)

@@ -2,7 +2,8 @@
 
 The forward model follows docs/design.md: a ring of d-spacing d lies at true radius
 R = K/d (K the camera constant in Å·px) and is drawn through the area-preserving
-elliptical distortion of :mod:`ringid.image.ellipse`. The azimuthal-mean profile of a
+elliptical distortion of docs/design.md, with the simulator's own map (:func:`true_offsets`,
+written from the convention, not taken from the analysis code). The azimuthal-mean profile of a
 ring has an integrated area over g proportional to the listed ring intensity
 (Vainshtein's polycrystal formula; a :class:`ringid.core.model.PhaseRings` list is
 already in those units). Ring shape is a pseudo-Voigt whose Gaussian part is the
@@ -26,7 +27,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ringid.image.ellipse import undistorted_offsets
 from ringid.profile.lineshape import unit_pseudo_voigt, voigt_as_pseudo_voigt
 from ringid.core.model import Geometry
 from ringid.core.units import electron_wavelength_angstrom
@@ -251,6 +251,32 @@ def simulate_pattern(
     return simulate_from_spec(d_angstrom, intensity, spec)
 
 
+def true_offsets(shape, center_x_px: float, center_y_px: float, ellipticity: float, ellipse_angle_deg: float):
+    """True (undistorted) offsets (ux, uy) in px, float32, of every pixel centre of an image of ``shape``.
+
+    The forward model of docs/design.md: a ring of true radius R is drawn as the ellipse
+    (x'/a)² + (y'/b)² = 1 with a = R/√(1−ε) along the major axis at θ (from +x towards +y) and
+    b = R·√(1−ε) across it. A pixel centre at offset (dx, dy) from the pattern centre (x = column,
+    y = row) has axis coordinates x' = dx·cosθ + dy·sinθ, y' = −dx·sinθ + dy·cosθ, so it lies on
+    the ring of true radius R = √((x'·√(1−ε))² + (y'/√(1−ε))²). Its true offset keeps that radius
+    and the axis frame: u = Rot(θ)·(x'·√(1−ε), y'/√(1−ε)), which written out is the symmetric
+    matrix [[s·c² + n²/s, c·n·(s − 1/s)], [c·n·(s − 1/s), s·n² + c²/s]] times (dx, dy), with
+    s = √(1−ε), c = cosθ, n = sinθ. Computed in float32 by broadcasting a row and a column.
+    """
+    ny, nx = shape
+    t = math.radians(ellipse_angle_deg)
+    c, s_ = math.cos(t), math.sin(t)
+    root = math.sqrt(1.0 - ellipticity)
+    m_xx = np.float32(root * c * c + s_ * s_ / root)
+    m_xy = np.float32(c * s_ * (root - 1.0 / root))
+    m_yy = np.float32(root * s_ * s_ + c * c / root)
+    dx = np.arange(nx, dtype=np.float32) - np.float32(center_x_px)
+    dy = np.arange(ny, dtype=np.float32) - np.float32(center_y_px)
+    ux = m_xx * dx[None, :] + m_xy * dy[:, None]
+    uy = m_xy * dx[None, :] + m_yy * dy[:, None]
+    return ux, uy
+
+
 def simulate_from_spec(d_angstrom, intensity, spec: PatternSpec) -> SimulatedPattern:
     """Simulate a ring pattern of rings d (Å) with relative intensities ``intensity`` as ``spec`` says.
 
@@ -298,7 +324,7 @@ def _expected_counts(spec: PatternSpec, cx: float, cy: float, g_rings, area, rng
     profile drawn by ``np.interp``, azimuthally modulated rings are added pixel by pixel.
     """
     g = spec.geometry
-    ux, uy = undistorted_offsets(g.shape, cx, cy, g.ellipticity, g.ellipse_angle_deg)
+    ux, uy = true_offsets(g.shape, cx, cy, g.ellipticity, g.ellipse_angle_deg)
     radius = np.sqrt(ux * ux + uy * uy)
     px_per_g = g.camera_constant_A_px / 10.0  # px per (1/nm)
     g_img = radius / np.float32(px_per_g)
