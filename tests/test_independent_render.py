@@ -197,7 +197,7 @@ def test_single_calibrant_end_to_end(measured, calibrant):
 
 @pytest.mark.parametrize("calibrant", [
     "CeO2", "Si", "NaCl", "alpha_Al2O3", "Au",
-    pytest.param("ZnO", marks=pytest.mark.xfail(strict=True, reason=(
+    pytest.param("ZnO", marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
         "measured: pyFAI's ZnO lines (sharp, 0.056 1/nm, no halo) at noise seed 7 come back 'mixed': a "
         "component of FWHM 1.03 1/nm at g = 5.6 1/nm (7.5 % of the area) is fitted under the rings and taken "
         "for a halo; seeds 8 and 9 give 'crystalline'"))),
