@@ -160,3 +160,24 @@ def test_a_simulated_mixture_series_gives_the_rising_share_of_the_second_phase(t
     assert np.all(np.isfinite(shares)), table
     assert np.all(np.diff(shares) > 0), shares
     assert np.allclose(shares, list(truth.values()), atol=0.15), shares
+
+
+def test_vegard_composition_between_two_end_members(tmp_path):
+    """x_B = (a − a_A)/(a_B − a_A) (Vegard, Z. Phys. 5, 17, 1921), between two library records
+    whose cells are written in the test (a_X = 3.90 Å, a_Y = 3.92 Å), computed from the law by hand
+    below, with σ = σ_a/(a_Y − a_X)."""
+    res = _results(tmp_path)
+    lib = res / "library" / "phases"
+    lib.mkdir(parents=True)
+    for phase, a in (("X", 3.9), ("Y", 3.92)):
+        (lib / f"{phase}.json").write_text(json.dumps({"phase": phase, "status": "ok", "cell": {"a_angstrom": a}}))
+    (tmp_path / "img.tif").write_bytes(b"II*\x00")
+    sheet = _sheet(tmp_path / "s.csv", [["a", "img.tif", "c1", "300"], ["b", "img.tif", "c1", "500"]])
+    assert main(["series", "alloy", str(res), "--samples-sheet", str(sheet), "--variable", "temperature_c",
+                 "--end-members", "X", "Y"]) == 0
+    with open(res / "series" / "alloy.csv", newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    # a: X refined to 3.90 Å -> x_Y = 0; b: X refined to 3.91 Å -> x_Y = (3.91 - 3.90)/(3.92 - 3.90) = 0.5
+    assert float(rows[0]["vegard_x_Y"]) == pytest.approx(0.0, abs=1e-12)
+    assert float(rows[1]["vegard_x_Y"]) == pytest.approx(0.5)
+    assert float(rows[1]["vegard_x_Y_sigma"]) == pytest.approx(0.001 / 0.02)

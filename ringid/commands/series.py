@@ -17,6 +17,8 @@ def add_parser(subparsers, name: str, help_text: str) -> None:
     p.add_argument("--variable", required=True, metavar="COLUMN",
                    help="numeric sample-sheet column, its unit in its name (e.g. temperature_c)")
     p.add_argument("--group-by", metavar="COLUMN", help="text column splitting the samples into several lines")
+    p.add_argument("--end-members", nargs=2, metavar=("A", "B"),
+                   help="two library phases of one structure: the composition x_B by Vegard's law (an estimate)")
     p.set_defaults(func=run)
 
 
@@ -31,6 +33,7 @@ def run(args) -> int:
         raise RingidError(None, f"series name {args.name!r} is not a safe file name")
     columns = {args.variable: "number", **({args.group_by: "text"} if args.group_by else {})}
     samples = read_samples(args.samples_sheet, extra_columns=columns)
-    table, _ = write_series(args.results, args.name, list(samples.values()), args.variable, args.group_by)
+    table, _ = write_series(args.results, args.name, list(samples.values()), args.variable, args.group_by,
+                            args.end_members)
     print(f"wrote {table} and its figure", file=sys.stderr)
     return 0

@@ -302,6 +302,16 @@ def series_png(path: str | os.PathLike, *, title: str, variable: str, columns: l
     ax_s.set_ylabel("crystallite\nsize (nm)", fontsize=8)
     if ax_s.get_legend_handles_labels()[0]:
         ax_s.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False)
+    vegard = [c for c in columns if c.startswith("vegard_x_") and not c.endswith("_sigma")]
+    if vegard:  # the composition by Vegard's law, on its own axis, marked as an estimate
+        ax_x = ax_a.twinx()
+        col = vegard[0]
+        xv = np.array([r[variable] for r in rows], float)
+        comp = np.array([num(r, col) for r in rows])
+        sig = np.array([num(r, f"{col}_sigma") for r in rows])
+        ax_x.errorbar(xv, comp, yerr=np.where(np.isfinite(sig), sig, 0.0), fmt="k--", ms=3, capsize=2, lw=0.8)
+        ax_x.set_ylabel(f"x({col[len('vegard_x_'):]}), Vegard\n(estimate)", fontsize=7)
+        ax_x.tick_params(labelsize=7)
     ax_a.set_ylabel("Δa/a₀ (%)", fontsize=8)
     ax_a.axhline(0, color="#888", lw=0.6)
     handles, _ = ax_a.get_legend_handles_labels()

@@ -86,11 +86,43 @@ def series_rows(results_dir: str | os.PathLike, members, variable: str) -> tuple
     return columns + ["error"], rows
 
 
-def write_series(results_dir: str | os.PathLike, name: str, samples, variable: str, group_by: str | None = None
-                 ) -> tuple[Path, Path]:
-    """Write ``series/{name}.csv`` and ``series/{name}.png``; return their paths."""
+def add_vegard(results_dir: str | os.PathLike, columns: list[str], rows: list[dict],
+               end_members: tuple[str, str]) -> list[str]:
+    """The composition of a solid solution between two library phases A and B of the same structure
+    by Vegard's law (Vegard, Z. Phys. 5, 17, 1921): x_B = (a − a_A)/(a_B − a_A) from the refined a
+    of whichever end member a sample was identified as, with σ = σ_a/|a_B − a_A|. An estimate: real
+    solid solutions deviate from the linear law. Adds the columns ``vegard_x_B`` and its σ."""
+    from ringid.library.store import read_phase_record
+
+    lib = Path(results_dir) / "library"
+    a_end = []
+    for phase in end_members:
+        try:
+            a_end.append(float(read_phase_record(lib, phase)["cell"]["a_angstrom"]))
+        except (RingidError, KeyError, TypeError, ValueError):
+            raise RingidError(lib, f"end member {phase!r} of the series has no cell in the library") from None
+    (phase_a, phase_b), (a_a, a_b) = end_members, a_end
+    if a_a == a_b:
+        raise RingidError(None, f"end members {phase_a} and {phase_b} have the same a: no composition by Vegard's law")
+    x_col = f"vegard_x_{phase_b}"
+    for row in rows:
+        for phase in end_members:
+            a, sa = row.get(f"a_{phase}_angstrom"), row.get(f"a_{phase}_sigma_angstrom")
+            if isinstance(a, (int, float)) and a is not None:
+                row[x_col] = (a - a_a) / (a_b - a_a)
+                row[f"{x_col}_sigma"] = sa / abs(a_b - a_a) if isinstance(sa, (int, float)) else None
+                break
+    return columns[:-1] + [x_col, f"{x_col}_sigma", columns[-1]]
+
+
+def write_series(results_dir: str | os.PathLike, name: str, samples, variable: str, group_by: str | None = None,
+                 end_members: tuple[str, str] | None = None) -> tuple[Path, Path]:
+    """Write ``series/{name}.csv`` and ``series/{name}.png``; return their paths (``end_members``:
+    two library phases of a solid solution, for the composition by Vegard's law)."""
     members = series_members(samples, variable, group_by)
     columns, rows = series_rows(results_dir, members, variable)
+    if end_members:
+        columns = add_vegard(results_dir, columns, rows, tuple(end_members))
     out = Path(results_dir) / "series"
     out.mkdir(parents=True, exist_ok=True)
     table = out / f"{name}.csv"

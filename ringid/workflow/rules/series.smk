@@ -19,6 +19,7 @@ for _name, _series in SERIES.items():
         input:
             records=series_inputs(_series),
             sheet=config["samples"],
+            index=f"{LIB}/index.csv",
         output:
             table=f"{RESULTS}/series/{_name}.csv",
             figure=f"{RESULTS}/series/{_name}.png",
@@ -28,6 +29,8 @@ for _name, _series in SERIES.items():
             name=_name,
             variable=_series["variable"],
             group=f"--group-by {_series['group_by']}" if _series.get("group_by") else "",
+            end_members=(f"--end-members {' '.join(_series['end_members'])}" if _series.get("end_members")
+                         else ""),
         threads: 1
         resources:
             mem_mb=mem("cheap"),
@@ -36,5 +39,5 @@ for _name, _series in SERIES.items():
             "ringid series {params.name:q} {RESULTS:q}"
             " --samples-sheet {input.sheet:q}"
             " --variable {params.variable}"
-            " {params.group}"
+            " {params.group} {params.end_members}"
             " > {log:q} 2>&1"
