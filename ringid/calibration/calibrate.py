@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ringid.core.errors import RingidError
-from ringid.core.model import Geometry, InstrumentProfile
+from ringid.core.model import Geometry, InstrumentProfile, Profile
 from ringid.core.records import CalibrationRecord, CalibrationRing, write_calibration_record
 from ringid.core.units import electron_wavelength_angstrom
 from ringid.image.radial import distorted_radius, undistort_radius
@@ -80,6 +80,8 @@ class Calibration:
     radial_distortion_k3_sigma_per_px2: float = math.nan
     flags: tuple[str, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
+    # the standard's azimuthal profile at the fitted geometry (for the figure; not in the record)
+    profile: Profile | None = field(default=None, compare=False, repr=False)
 
     @property
     def ring_g_calc_per_nm(self) -> np.ndarray:
@@ -497,6 +499,7 @@ def calibrate_pattern(data: np.ndarray, mask: np.ndarray | None, standard_d_angs
         ring_hkl=tuple(hkl[j] for j in assignment.standard_index[order]),
         ring_d_calc_angstrom=d_std[assignment.standard_index][order], ring_g_obs_per_nm=g_obs[order],
         ring_g_sigma_per_nm=g_sig[order], ring_fwhm_per_nm=fwhm[order], fwhm_c0_per_nm=c0, fwhm_c1=c1,
+        profile=profile,
         unassigned_g_per_nm=10.0 * undistort_radius(radii[assignment.unassigned_observed], k3) / k,
         standard=standard,
         standard_source=standard_source, image="" if path is None else os.fspath(path),

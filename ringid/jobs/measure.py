@@ -187,8 +187,9 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
     ``image_options``: ``saturation_level``, ``frame``, ``negative_floor``, ``user_mask_path`` for
     a standard film's image (the same as for the samples).
     """
+    profile = None
     try:
-        record = _calibrate_row(row, library_dir, image_options or {})
+        record, profile = _calibrate_row(row, library_dir, image_options or {})
     except Exception as exc:  # noqa: BLE001 - recorded; its samples fail with this reason
         record = CalibrationRecord(calibration=row.calibration, kind=row.kind, status="failed",
                                    error=_error_text(exc), voltage_kv=row.voltage_kv)
@@ -198,23 +199,15 @@ def make_calibration(row, out_path: str | os.PathLike, *, library_dir: str | os.
 
         try:
             calibration_png(Path(out_path).with_suffix(".png"), title=f"{row.calibration}: residuals",
-                            residuals=record.rings, profile=_standard_profile(row, record, image_options or {}))
-        except (OSError, ValueError, RingidError):
+                            residuals=record.rings, profile=profile)
+        except (OSError, ValueError):
             pass
     return record
 
 
-def _standard_profile(row, record: CalibrationRecord, image_options: dict):
-    """The standard film's azimuthal profile at the fitted geometry (for the calibration figure)."""
-    from ringid.image.integrate import integrate_profile
-    from ringid.image.stage import load_and_mask
-
-    img, masks = load_and_mask(row.image, **image_options)
-    return integrate_profile(img.data, masks.mask, record.geometry, with_cake=False)
-
-
-def _calibrate_row(row, library_dir, image_options: dict) -> CalibrationRecord:
-    """The calibration of one sheet row: fitted on a standard film, or a known or nominal camera constant."""
+def _calibrate_row(row, library_dir, image_options: dict):
+    """The calibration of one sheet row: fitted on a standard film, or a known or nominal camera
+    constant; ``(CalibrationRecord, the standard's profile at the fitted geometry or None)``."""
     from ringid.core.units import electron_wavelength_angstrom, nominal_camera_constant_a_px
 
     if row.kind == "standard":
@@ -225,7 +218,7 @@ def _calibrate_row(row, library_dir, image_options: dict) -> CalibrationRecord:
         cal = calibrate_image(row.image, rings.d_angstrom, voltage_kv=row.voltage_kv,
                               standard_intensity=rings.intensity, standard_hkl=rings.hkl, standard=row.standard,
                               standard_source=f"phase library {library_dir}", **image_options)
-        return cal.record(calibration=row.calibration)
+        return cal.record(calibration=row.calibration), cal.profile
     if row.kind == "constant":
         k, note = row.camera_constant_A_px, "known camera constant from the sheet"
         length, pixel = None, None
@@ -236,7 +229,7 @@ def _calibrate_row(row, library_dir, image_options: dict) -> CalibrationRecord:
     return CalibrationRecord(calibration=row.calibration, kind=row.kind, voltage_kv=row.voltage_kv,
                              camera_constant_A_px=k, wavelength_angstrom=electron_wavelength_angstrom(row.voltage_kv),
                              camera_length_mm=length, pixel_size_um=pixel, notes=(note,),
-                             flags=("distortion_not_measured", "instrument_width_unknown"))
+                             flags=("distortion_not_measured", "instrument_width_unknown")), None
 
 
 def identify_sample(sample_dir: str | os.PathLike, library, *, window_standard: float = WINDOW_STANDARD,
